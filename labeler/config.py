@@ -1,0 +1,192 @@
+"""Every setting of the tool, as strict pydantic models validated at the edge.
+
+Precedence, written once here: command-line flag > environment (``LABELER__SECTION__KEY``) >
+TOML file > default. Unknown keys are errors, never ignored.
+"""
+from __future__ import annotations
+
+import datetime as dt
+import json
+import os
+import tomllib
+from pathlib import Path
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+
+from .errors import ConfigError
+
+ENV_PREFIX = "LABELER__"
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", validate_default=True, frozen=True)
+
+    def canonical_json(self) -> str:
+        """Key-sorted JSON of every field: the input of version hashes."""
+        return json.dumps(self.model_dump(mode="json"), sort_keys=True, separators=(",", ":"))
+
+
+class InputConfig(_Strict):
+    """How raw input columns are read."""
+
+    timezone: str | None = Field(None, description="IANA zone for naive timestamps; None rejects them.")
+    epoch_unit: Literal["s", "ms", "us", "ns"] | None = Field(
+        None, description="Unit of integer epoch timestamps; None rejects integer timestamps.")
+    text_columns: tuple[str, ...] = ("title", "description", "tags")
+
+    @field_validator("timezone")
+    @classmethod
+    def _known_zone(cls, v):
+        if v is None:
+            return v
+        from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+        try:
+            ZoneInfo(v)
+        except (ZoneInfoNotFoundError, ValueError):
+            raise ValueError(f"unknown timezone {v!r}; use an IANA name such as 'UTC' or 'Europe/Lisbon'")
+        return v
+
+
+class TaxonomyConfig(_Strict):
+    """How a taxonomy is learned from item text."""
+
+    text_columns: tuple[str, ...] = ("title", "description", "tags")
+    model: str = "all-MiniLM-L6-v2"
+    model_path: str | None = Field(None, description="Explicit model folder; wins over models_cache/.")
+    embedding_cache: str | None = Field(None, description="Folder of the content-hash embedding cache.")
+    batch_size: int = Field(64, ge=1)
+    pca_components: int = Field(32, ge=2)
+    min_cluster_size: int = Field(15, ge=2)
+    min_samples: int | None = Field(5, ge=1)
+    fit_sample_cap: int = Field(50_000, ge=100)
+    min_confidence: float = Field(0.2, ge=0.0, le=1.0)
+    coarse_topics: int | None = Field(None, ge=1, description="Level-0 topic count; None chooses it.")
+    keywords_per_topic: int = Field(10, ge=1)
+    name_words: int = Field(3, ge=1)
+    id_match_min_jaccard: float = Field(0.3, gt=0.0, le=1.0)
+    seed: int = 0
+
+
+class LabelConfig(_Strict):
+    """The label rules' parameters (DESIGN.md, 'Label rules')."""
+
+    min_support: int = Field(1, ge=1)
+    memory_days: float | None = Field(None, gt=0)
+    footprint_from: Literal["all", "engaged"] = "all"
+    engaged_min: float = 1.0
+    warmup: int = Field(1, ge=0)
+    multi_topic: Literal["all_new", "any_new"] = "all_new"
+    multiplier: float = Field(2.0, ge=1.0)
+    boost_on: Literal["new_interest", "discovery"] = "new_interest"
+    levels: tuple[int, ...] | None = None
+    event_types: tuple[str, ...] | None = None
+    label_from: dt.datetime | None = None
+    no_boost_topics: tuple[str, ...] = ()
+
+    @field_validator("label_from")
+    @classmethod
+    def _aware(cls, v):
+        if v is not None and v.tzinfo is None:
+            raise ValueError("label_from needs a timezone, e.g. '2026-03-01T00:00:00Z'")
+        return v.astimezone(dt.timezone.utc) if v is not None else v
+
+    @property
+    def memory_us(self) -> int | None:
+        """The memory window in microseconds (None: never forget)."""
+        return None if self.memory_days is None else int(round(self.memory_days * 86_400_000_000))
+
+
+class GateConfig(_Strict):
+    """Thresholds a candidate taxonomy must meet before rollout."""
+
+    max_flip_share: float = Field(0.10, ge=0, le=1)
+    min_ami: float = Field(0.5, ge=0, le=1)
+    max_unplaced_share: float = Field(0.10, ge=0, le=1)
+    max_retired_share: float = Field(0.25, ge=0, le=1)
+    min_topic_size: int = Field(5, ge=1)
+
+
+class EngineConfig(_Strict):
+    """Where the relational label expressions run."""
+
+    engine: Literal["duckdb", "spark"] = "duckdb"
+    memory_limit: str = "4GB"
+    temp_dir: str | None = None
+    threads: int | None = Field(None, ge=1)
+
+
+class JobConfig(_Strict):
+    """Everything one scheduled run needs, loaded from a TOML file."""
+
+    items: str | None = None
+    interactions: str | None = None
+    work_dir: str = "labeler-work"
+    input: InputConfig = InputConfig()
+    taxonomy: TaxonomyConfig = TaxonomyConfig()
+    labels: LabelConfig = LabelConfig()
+    gate: GateConfig = GateConfig()
+    engine: EngineConfig = EngineConfig()
+
+
+def _env_overrides(environ: dict[str, str]) -> dict[str, Any]:
+    out: dict[str, Any] = {}
+    for key, raw in environ.items():
+        if not key.startswith(ENV_PREFIX):
+            continue
+        path = key[len(ENV_PREFIX):].lower().split("__")
+        try:
+            value = json.loads(raw)
+        except json.JSONDecodeError:
+            value = raw
+        node = out
+        for part in path[:-1]:
+            node = node.setdefault(part, {})
+        node[path[-1]] = value
+    return out
+
+
+def _merge(base: dict, over: dict) -> dict:
+    merged = dict(base)
+    for k, v in over.items():
+        merged[k] = _merge(merged[k], v) if isinstance(v, dict) and isinstance(merged.get(k), dict) else v
+    return merged
+
+
+def load_job_config(path: str | Path | None = None, flags: dict[str, Any] | None = None,
+                    environ: dict[str, str] | None = None) -> JobConfig:
+    """Build a JobConfig: flags > environment > TOML file > defaults.
+
+    >>> load_job_config(flags={"labels": {"min_support": 2}}, environ={}).labels.min_support
+    2
+    """
+    data: dict[str, Any] = {}
+    source = "defaults"
+    if path is not None:
+        p = Path(path)
+        source = str(p)
+        try:
+            data = tomllib.loads(p.read_text(encoding="utf-8"))
+        except FileNotFoundError:
+            raise ConfigError(f"{p}: config file not found. Pass an existing TOML file with --config.")
+        except tomllib.TOMLDecodeError as exc:
+            raise ConfigError(f"{p}: not valid TOML ({exc}). Fix the syntax and run again.")
+    data = _merge(data, _env_overrides(os.environ if environ is None else environ))
+    data = _merge(data, flags or {})
+    return validate_config(JobConfig, data, source)
+
+
+def validate_config(model: type[_Strict], data: dict[str, Any], source: str = "settings"):
+    """Validate a dict into ``model``, turning pydantic's error into one ConfigError."""
+    try:
+        return model.model_validate(data)
+    except ValidationError as exc:
+        lines = []
+        for err in exc.errors():
+            where = ".".join(str(p) for p in err["loc"]) or "(root)"
+            if err["type"] == "extra_forbidden":
+                lines.append(f"unknown key '{where}'")
+            else:
+                lines.append(f"'{where}': {err['msg']} (got {err.get('input')!r})")
+        raise ConfigError(f"{source}: invalid {model.__name__}: " + "; ".join(lines)
+                          + ". See README 'Configuration' for the valid keys.") from None

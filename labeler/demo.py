@@ -1,0 +1,170 @@
+"""The invented demo scenario: a hobby-tutorial video site, generated with its ground truth.
+
+``generate_scenario(seed)`` returns items, interactions and the truth (each item's theme, each
+user's true new-interest events). Deterministic for a seed. Everything here is invented.
+"""
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+
+import numpy as np
+import pandas as pd
+
+from .demo_catalog import (DESCRIPTION_FORMS, OFF_TOPIC_DESCRIPTIONS, OFF_TOPIC_TAGS,
+                           OFF_TOPIC_TITLES, THEMES, TITLE_FORMS)
+
+START = dt.datetime(2026, 3, 2, tzinfo=dt.timezone.utc)  # a Monday
+THEME_LIST = [(hobby, theme) for hobby, themes in THEMES.items() for theme in themes]
+
+
+@dataclasses.dataclass
+class Scenario:
+    items: pd.DataFrame          # item_id, title, description, tags, category, updated_at
+    interactions: pd.DataFrame   # user_id, item_id, ts, engagement, event_id, event_type, arm
+    truth_items: pd.DataFrame    # item_id, theme, hobby, kind (regular | mixed | off_topic), theme2
+    truth_events: pd.DataFrame   # user_id, item_id, ts, event_id, theme: true new-interest events
+    users: pd.DataFrame          # user_id, kind (explorer | homebody | churner), arm, churn_week
+
+
+def _typo(rng: np.random.Generator, text: str, p: float) -> str:
+    if rng.random() >= p or len(text) < 6:
+        return text
+    i = int(rng.integers(1, len(text) - 2))
+    return text[:i] + text[i + 1] + text[i] + text[i + 2:]
+
+
+def _fill(rng, form: str, vocab, n: int | None = None) -> str:
+    subjects, techniques, tools, _ = vocab
+    t1, t2 = rng.choice(len(techniques), size=2, replace=len(techniques) < 2)
+    o1, o2 = rng.choice(len(tools), size=2, replace=len(tools) < 2)
+    subject = subjects[int(rng.integers(len(subjects)))]
+    return form.format(subject=subject, subject_c=subject.capitalize(), technique=techniques[t1],
+                       technique_c=techniques[t1].capitalize(), technique2=techniques[t2],
+                       tool=tools[o1], tool2=tools[o2], n=n or int(rng.integers(3, 11)))
+
+
+def _items(rng: np.random.Generator, n_items: int) -> tuple[pd.DataFrame, pd.DataFrame]:
+    rows, truth = [], []
+    n_off = max(1, n_items // 40)
+    n_mixed = max(1, n_items // 15)
+    kinds = ["off_topic"] * n_off + ["mixed"] * n_mixed + ["regular"] * (n_items - n_off - n_mixed)
+    rng.shuffle(kinds)
+    for k, kind in enumerate(kinds):
+        item_id = f"v{k:05d}"
+        if kind == "off_topic":
+            title = OFF_TOPIC_TITLES[int(rng.integers(len(OFF_TOPIC_TITLES)))].format(
+                year=int(rng.integers(2019, 2027)), n=int(rng.integers(1, 100)))
+            desc = OFF_TOPIC_DESCRIPTIONS[int(rng.integers(len(OFF_TOPIC_DESCRIPTIONS)))]
+            tags = list(rng.choice(OFF_TOPIC_TAGS, size=2, replace=False))
+            rows.append((item_id, title, desc, " ".join(f"#{t.replace(' ', '')}" for t in tags), None))
+            truth.append((item_id, None, None, kind, None))
+            continue
+        a = int(rng.integers(len(THEME_LIST)))
+        hobby, theme = THEME_LIST[a]
+        vocab = THEMES[hobby][theme]
+        title = _fill(rng, TITLE_FORMS[int(rng.integers(len(TITLE_FORMS)))], vocab)
+        desc = _fill(rng, DESCRIPTION_FORMS[int(rng.integers(len(DESCRIPTION_FORMS)))], vocab)
+        tags = list(rng.choice(vocab[3], size=min(3, len(vocab[3])), replace=False))
+        theme2 = None
+        if kind == "mixed":
+            b = int(rng.integers(len(THEME_LIST)))
+            while b == a:
+                b = int(rng.integers(len(THEME_LIST)))
+            hobby2, theme2 = THEME_LIST[b]
+            other = THEMES[hobby2][theme2]
+            desc += " " + _fill(rng, "Bonus: a bit of {technique} with a {tool}.", other)
+            tags.append(other[3][0])
+        title = _typo(rng, title, 0.08)
+        desc = _typo(rng, desc, 0.08)
+        category = hobby if theme2 is None else f"{hobby}|{[h for h, t in THEME_LIST if t == theme2][0]}"
+        rows.append((item_id, title, desc, " ".join(f"#{t.replace(' ', '')}" for t in tags),
+                     category if hobby != category.split("|")[-1] or theme2 is None else hobby))
+        truth.append((item_id, theme, hobby, kind, theme2))
+    items = pd.DataFrame(rows, columns=["item_id", "title", "description", "tags", "category"])
+    items["updated_at"] = pd.Timestamp(START - dt.timedelta(days=30)).as_unit("us")
+    truth_df = pd.DataFrame(truth, columns=["item_id", "theme", "hobby", "kind", "theme2"])
+    return items, truth_df
+
+
+def generate_scenario(seed: int = 7, n_items: int = 3200, n_users: int = 1200,
+                      weeks: int = 12) -> Scenario:
+    """Generate the demo catalog and 12 weeks of viewing with latent, sometimes widening interests.
+
+    >>> s = generate_scenario(seed=1, n_items=200, n_users=20, weeks=2)
+    >>> sorted(s.interactions.columns)[:3]
+    ['arm', 'engagement', 'event_id']
+    """
+    rng = np.random.default_rng(seed)
+    items, truth_items = _items(rng, n_items)
+    by_theme = {t: g.item_id.to_numpy() for t, g in truth_items[truth_items.kind != "off_topic"]
+                .groupby("theme")}
+    off_topic = truth_items.loc[truth_items.kind == "off_topic", "item_id"].to_numpy()
+    themes = [t for _, t in THEME_LIST]
+    hobby_of = {t: h for h, t in THEME_LIST}
+    popularity = {t: rng.zipf(1.6, size=len(v)).astype(float) for t, v in by_theme.items()}
+
+    events, truth_events, users = [], [], []
+    for u in range(n_users):
+        user_id = f"u{u:04d}"
+        kind = rng.choice(["explorer", "homebody", "churner"], p=[0.6, 0.25, 0.15])
+        arm = "explore_boost" if rng.random() < 0.5 else "control"
+        churn_week = int(rng.integers(2, weeks)) if kind == "churner" else weeks
+        first = themes[int(rng.integers(len(themes)))]
+        interests = [first]
+        for _ in range(int(rng.integers(0, 3))):
+            same = [t for t in themes if hobby_of[t] == hobby_of[first] and t not in interests]
+            pool = same if (rng.random() < 0.7 and same) else [t for t in themes if t not in interests]
+            interests.append(pool[int(rng.integers(len(pool)))])
+        weights = list(rng.uniform(0.5, 1.5, size=len(interests)))
+        sessions_per_week = float(rng.lognormal(0.6, 0.6))
+        p_explore = {"explorer": 0.10, "homebody": 0.0, "churner": 0.05}[kind]
+        p_explore *= 1.6 if arm == "explore_boost" else 1.0
+        pending_new: set[str] = set()
+        users.append((user_id, kind, arm, churn_week))
+        for week in range(churn_week):
+            if rng.random() < p_explore:
+                same = [t for t in themes if hobby_of[t] == hobby_of[interests[0]] and t not in interests]
+                pool = same if (rng.random() < 0.5 and same) else [t for t in themes if t not in interests]
+                if pool:
+                    new = pool[int(rng.integers(len(pool)))]
+                    interests.append(new)
+                    weights.append(2.0)
+                    pending_new.add(new)
+            for _ in range(int(rng.poisson(sessions_per_week))):
+                day = int(rng.integers(0, 7))
+                t0 = START + dt.timedelta(days=7 * week + day, seconds=int(rng.integers(6 * 3600, 86_000)))
+                for j in range(int(rng.integers(1, 7))):
+                    ts = t0 + dt.timedelta(seconds=int(rng.integers(0, 240)) * j)
+                    r = rng.random()
+                    if r < 0.85 or kind == "homebody":
+                        w = np.asarray(weights) / np.sum(weights)
+                        theme = interests[int(rng.choice(len(interests), p=w))]
+                        if theme in pending_new:
+                            engagement = float(rng.choice([1.0, 2.0]))
+                        else:
+                            engagement = float(rng.choice([0.5, 1.0, 2.0], p=[0.2, 0.5, 0.3]))
+                    elif r < 0.95:
+                        theme = themes[int(rng.integers(len(themes)))]
+                        engagement = float(rng.choice([-1.0, 0.0, 0.5, 1.0], p=[0.15, 0.45, 0.3, 0.1]))
+                    else:
+                        theme = None
+                        engagement = float(rng.choice([0.0, 0.5]))
+                    if theme is None:
+                        item = off_topic[int(rng.integers(len(off_topic)))]
+                    else:
+                        pop = popularity[theme]
+                        item = by_theme[theme][int(rng.choice(len(pop), p=pop / pop.sum()))]
+                    event_id = f"e{len(events):07d}"
+                    if theme in pending_new:
+                        pending_new.discard(theme)
+                        truth_events.append((user_id, item, ts, event_id, theme))
+                    events.append((user_id, item, ts, engagement, event_id, "play", arm))
+    inter = pd.DataFrame(events, columns=["user_id", "item_id", "ts", "engagement", "event_id",
+                                          "event_type", "arm"])
+    inter["ts"] = pd.to_datetime(inter["ts"], utc=True).astype("datetime64[us, UTC]")
+    inter = inter.sort_values(["ts", "user_id", "event_id"], kind="stable").reset_index(drop=True)
+    tev = pd.DataFrame(truth_events, columns=["user_id", "item_id", "ts", "event_id", "theme"])
+    tev["ts"] = pd.to_datetime(tev["ts"], utc=True).astype("datetime64[us, UTC]")
+    users_df = pd.DataFrame(users, columns=["user_id", "kind", "arm", "churn_week"])
+    return Scenario(items, inter, truth_items, tev, users_df)

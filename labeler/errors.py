@@ -1,0 +1,57 @@
+"""One exception tree for the whole tool.
+
+Every error says what was wrong, where (file, column, sample rows) and what to do. The CLI maps
+these classes to exit codes at the edge; the library never calls ``sys.exit``.
+"""
+from __future__ import annotations
+
+
+class LabelerError(ValueError):
+    """Root of every error the tool raises on purpose."""
+
+    exit_code = 2
+
+
+class ConfigError(LabelerError):
+    """A setting is unknown, mistyped or out of range."""
+
+
+class InputError(LabelerError):
+    """An input table breaks its column contract (missing column, bad value, empty file)."""
+
+    def __init__(self, message: str, *, source: str | None = None, column: str | None = None,
+                 sample: list | None = None, hint: str | None = None):
+        parts = []
+        if source:
+            parts.append(f"{source}:")
+        if column:
+            parts.append(f"column '{column}':")
+        parts.append(message)
+        text = " ".join(parts)
+        if sample:
+            shown = "; ".join(str(s) for s in sample[:5])
+            text += f" Offending rows (first {min(len(sample), 5)}): {shown}."
+        if hint:
+            text += f" {hint}"
+        super().__init__(text)
+        self.source, self.column, self.sample = source, column, sample or []
+
+
+class ModelNotFoundError(LabelerError):
+    """No embedding model could be resolved without network access."""
+
+
+class ArtifactError(LabelerError):
+    """An on-disk artifact (taxonomy, store) is missing, corrupt or from an unknown format."""
+
+
+class RejectedError(LabelerError):
+    """The run finished its checks and rejected something (a gate failed)."""
+
+    exit_code = 1
+
+
+class LockedError(LabelerError):
+    """Another run holds the lock."""
+
+    exit_code = 3

@@ -1,0 +1,154 @@
+"""Inputs of a labelling run as engine tables: interactions (pandas, Arrow or Parquet) and item topics.
+
+pandas and Arrow inputs are validated in memory by :mod:`labeler.tables`. A Parquet path is read
+lazily by the engine when its columns already have native types (timestamps with a zone, numeric
+engagement); the contract is then checked with aggregate queries, so a file larger than memory
+never has to fit in it. Other Parquet files are read into memory and validated like pandas.
+"""
+from __future__ import annotations
+
+import logging
+import os
+from pathlib import Path
+
+import ibis
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from .config import InputConfig, LabelConfig
+from .errors import InputError
+from .tables import INTERACTIONS_REQUIRED, Intake, normalize_interactions, require_columns
+
+log = logging.getLogger(__name__)
+
+EPOCH = ibis.timestamp("1970-01-01T00:00:00+00:00")
+_COLUMNS = ("user_id", "item_id", "ts", "engagement", "event_id", "event_type", "arm")
+
+
+def _with_ts_us(t):
+    return t.mutate(ts_us=t.ts.delta(EPOCH, unit="microsecond"))
+
+
+def interactions_table(engine, data, input_config: InputConfig | None = None,
+                       source: str | None = None):
+    """Validate ``data`` and return (engine table with ts_us, Intake)."""
+    cfg = input_config or InputConfig()
+    if isinstance(data, (str, os.PathLike)):
+        path = Path(data)
+        source = source or str(path)
+        lazy = _lazy_parquet(engine, path, cfg, source)
+        if lazy is not None:
+            return lazy
+        from .tables import read_table
+        data = read_table(path)
+    source = source or "interactions"
+    if isinstance(data, pa.Table):
+        data = data.to_pandas()
+    if not isinstance(data, pd.DataFrame):
+        raise InputError(f"expected a pandas DataFrame, an Arrow table or a Parquet path, got "
+                         f"{type(data).__name__}.", source=source)
+    df, intake = normalize_interactions(data, cfg, source)
+    table = engine.table(pa.Table.from_pandas(df[list(_COLUMNS)], schema=_arrow_schema(),
+                                              preserve_index=False), "interactions")
+    return _with_ts_us(table), intake
+
+
+def _arrow_schema() -> pa.Schema:
+    return pa.schema([("user_id", pa.string()), ("item_id", pa.string()),
+                      ("ts", pa.timestamp("us", tz="UTC")), ("engagement", pa.float64()),
+                      ("event_id", pa.string()), ("event_type", pa.string()), ("arm", pa.string())])
+
+
+def _lazy_parquet(engine, path: Path, cfg: InputConfig, source: str):
+    if not path.exists():
+        raise InputError("file not found.", source=source, hint="Check the path and try again.")
+    if not (path.is_dir() or path.suffix.lower() in (".parquet", ".pq")):
+        return None
+    try:
+        schema = pq.read_schema(path) if path.is_file() else pq.ParquetDataset(path).schema
+    except Exception as exc:
+        raise InputError(f"could not be read as Parquet ({type(exc).__name__}: {exc}).", source=source,
+                         hint="Check the file is a complete Parquet file.") from None
+    names = schema.names
+    require_columns(pd.DataFrame(columns=names), INTERACTIONS_REQUIRED, source)
+    ts_type = schema.field("ts").type
+    eng_ok = "engagement" not in names or pa.types.is_floating(schema.field("engagement").type) \
+        or pa.types.is_integer(schema.field("engagement").type)
+    if not (pa.types.is_timestamp(ts_type) and ts_type.tz is not None and eng_ok):
+        return None  # needs in-memory parsing (text or naive timestamps, text engagement)
+    intake = Intake(source=source)
+    t = engine.read_parquet(path / "**" / "*.parquet" if path.is_dir() else path)
+    cols = {"user_id": t.user_id.cast("string"), "item_id": t.item_id.cast("string"),
+            "ts": t.ts.cast(ibis.dtype("timestamp('UTC', 6)"))}
+    cols["engagement"] = t.engagement.cast("float64") if "engagement" in names else ibis.literal(1.0)
+    for c in ("event_id", "event_type", "arm"):
+        cols[c] = t[c].cast("string") if c in names else ibis.null("string")
+    for c in ("user_id", "item_id", "event_id", "event_type", "arm"):
+        if c in names and pa.types.is_integer(schema.field(c).type):
+            intake.note(f"column '{c}' holds integers; cast to strings")
+    t = t.select(**cols)
+    checks = t.aggregate(
+        rows=t.count(),
+        null_user=(t.user_id.isnull() | (t.user_id.strip() == "")).sum(),
+        null_item=(t.item_id.isnull() | (t.item_id.strip() == "")).sum(),
+        null_ts=t.ts.isnull().sum(),
+        bad_eng=(t.engagement.isnull() | t.engagement.isnan() | t.engagement.isinf()).sum()).execute()
+    row = checks.iloc[0]
+    intake.rows_in = intake.rows_out = int(row["rows"])
+    if intake.rows_in == 0:
+        raise InputError("the table has no rows.", source=source, hint="Give a non-empty table.")
+    for col, key, what in (("user_id", "null_user", "null or empty id(s)"),
+                           ("item_id", "null_item", "null or empty id(s)"),
+                           ("ts", "null_ts", "null timestamp(s)"),
+                           ("engagement", "bad_eng", "null, NaN or infinite engagement value(s)")):
+        if int(row[key]):
+            bad = {"user_id": t.user_id.isnull() | (t.user_id.strip() == ""),
+                   "item_id": t.item_id.isnull() | (t.item_id.strip() == ""),
+                   "ts": t.ts.isnull(),
+                   "engagement": t.engagement.isnull() | t.engagement.isnan() | t.engagement.isinf()}[col]
+            sample = t.filter(bad).limit(5).execute()
+            raise InputError(f"{int(row[key])} {what}.", source=source, column=col,
+                             sample=[", ".join(f"{k}={v!r}" for k, v in r.items())
+                                     for r in sample[list(INTERACTIONS_REQUIRED)].to_dict("records")])
+    if "engagement" not in names:
+        intake.note("no 'engagement' column: every interaction counts as 1.0")
+    return _with_ts_us(t), intake
+
+
+def item_topics_table(engine, tax, cfg: LabelConfig):
+    """The taxonomy's item_topics with pos (0 = primary), the no-boost flag and validity bounds."""
+    it = tax.item_topics.copy()
+    levels = cfg.levels if cfg.levels is not None else tuple(tax.levels)
+    unknown = sorted(set(levels) - set(tax.levels))
+    if unknown:
+        from .errors import ConfigError
+        raise ConfigError(f"labels.levels {list(levels)} names level(s) {unknown} that taxonomy "
+                          f"{tax.version[:12]} does not have (it has {tax.levels}).")
+    it = it[it["level"].isin(levels)]
+    parent = tax.parent_of()
+    nb = set(cfg.no_boost_topics)
+    missing = sorted(nb - set(tax.topics["topic_id"]))
+    if missing:
+        log.warning("no_boost_topics %s are not topics of taxonomy %s", missing, tax.version[:12])
+    it["nb"] = it["topic_id"].isin(nb) | it["topic_id"].map(parent).isin(nb)
+    has_valid = "valid_from" in it.columns
+    if has_valid:
+        vf = pd.to_datetime(it["valid_from"], utc=True)
+        it["valid_from_us"] = np.where(vf.isna(), np.iinfo("int64").min,
+                                       (vf.astype("datetime64[us, UTC]").astype("int64")))
+        starts = it[["item_id", "level", "valid_from_us"]].drop_duplicates().sort_values(
+            ["item_id", "level", "valid_from_us"])
+        starts["valid_to_us"] = starts.groupby(["item_id", "level"])["valid_from_us"].shift(-1).fillna(
+            np.iinfo("int64").max).astype("int64")
+        it = it.merge(starts, on=["item_id", "level", "valid_from_us"])
+    keys = ["item_id", "level"] + (["valid_from_us"] if has_valid else [])
+    it = it.sort_values(keys + ["confidence", "topic_id"], ascending=[True] * len(keys) + [False, True],
+                        kind="stable")
+    it["pos"] = it.groupby(keys).cumcount()
+    cols = ["item_id", "level", "topic_id", "pos", "nb"] + (["valid_from_us", "valid_to_us"] if has_valid else [])
+    out = it[cols].reset_index(drop=True)
+    out["level"] = out["level"].astype("int32")
+    levels_t = engine.table(pd.DataFrame({"level": pd.Series(sorted(levels), dtype="int32")}), "levels")
+    return engine.table(out, "item_topics"), levels_t, has_valid

@@ -1,0 +1,273 @@
+"""Running the label rules: the public ``label_interactions`` / ``build_footprints`` and the run summary.
+
+A :class:`LabelRun` plans the expressions of :mod:`labeler.labels` on one engine once, so the
+CLI and the job get labels, footprints and the summary from one pass over the inputs.
+"""
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import json
+import logging
+import os
+import shutil
+import uuid
+from pathlib import Path
+from typing import Any
+
+import ibis
+import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
+
+from . import __version__
+from .config import InputConfig, LabelConfig
+from .engines import Engine, make_engine
+from .intake import interactions_table, item_topics_table
+from .labels import footprint_rows, known_topic_counts, known_transitions, label_rows, prepare, \
+    topic_rows, with_support
+from .tables import FOOTPRINTS_COLUMNS, LABEL_VALUES, LABELS_COLUMNS, Intake
+
+log = logging.getLogger(__name__)
+
+LABELS_SCHEMA = pa.schema([
+    ("user_id", pa.string()), ("item_id", pa.string()), ("ts", pa.timestamp("us", tz="UTC")),
+    ("event_id", pa.string()), ("level", pa.int32()), ("topic_id", pa.string()), ("label", pa.string()),
+    ("engaged", pa.bool_()), ("discovery", pa.bool_()), ("reward_multiplier", pa.float64()),
+    ("shaped_reward", pa.float64()), ("history_len", pa.int64()), ("known_topics", pa.int64()),
+    ("taxonomy_version", pa.string()), ("labels_version", pa.string())])
+FOOTPRINTS_SCHEMA = pa.schema([
+    ("user_id", pa.string()), ("level", pa.int32()), ("topic_id", pa.string()),
+    ("first_ts", pa.timestamp("us", tz="UTC")), ("last_ts", pa.timestamp("us", tz="UTC")),
+    ("interactions", pa.int64()), ("engaged_interactions", pa.int64()), ("known", pa.bool_()),
+    ("known_since", pa.timestamp("us", tz="UTC"))])
+SORT_KEYS = ("user_id", "ts_us", "event_id", "item_id", "level")
+ROW_GROUP = 262_144
+
+
+@dataclasses.dataclass
+class LabelRun:
+    """Planned label and footprint expressions over one engine, with what intake reported."""
+
+    engine: Engine
+    config: LabelConfig
+    taxonomy_version: str
+    labels_version: str
+    labels: Any            # Ibis table: labels with ts_us, unsorted
+    footprints: Any        # Ibis table: footprints with known_since_us
+    as_of_us: int | None
+    intake: Intake
+    counts: dict[str, int]
+
+    # -- results as Arrow / pandas --------------------------------------------------------------
+    def _labels_sorted(self):
+        t = self.labels
+        return t.order_by([ibis.asc(t[k], nulls_first=False) for k in SORT_KEYS])
+
+    def labels_arrow(self) -> pa.Table:
+        t = self.engine.to_arrow(self._labels_sorted().drop("ts_us"))
+        return _finish_labels(t, self.taxonomy_version, self.labels_version)
+
+    def labels_frame(self) -> pd.DataFrame:
+        return self.labels_arrow().to_pandas()
+
+    def footprints_arrow(self) -> pa.Table:
+        t = self.footprints
+        t = t.order_by([t.user_id, t.level, t.topic_id])
+        return _finish_footprints(self.engine.to_arrow(t))
+
+    def footprints_frame(self) -> pd.DataFrame:
+        return self.footprints_arrow().to_pandas()
+
+    def content_hash(self) -> str:
+        """Order-independent canonical hash of the labels rows, equal across engines and machines."""
+        return self.engine.content_hash(self.labels, _CANON_COLUMNS,
+                                        extra=f"{self.taxonomy_version}\x00{self.labels_version}")
+
+    # -- summary --------------------------------------------------------------------------------
+    def summary(self) -> dict[str, Any]:
+        """Counts per label and level, new-interest and discovery shares, weekly new-interest rate."""
+        t = self.labels
+        by = t.group_by(["level", "label"]).aggregate(n=t.count(), disc=t.discovery.cast("int64").sum(),
+                                                      boosted=(t.reward_multiplier > 1).cast("int64").sum())
+        by = self.engine.to_pandas(by)
+        week = t.mutate(week=t.ts.truncate("W").date())
+        wk = week.group_by(["level", "week"]).aggregate(
+            n=week.count(), new=(week.label == "new_interest").cast("int64").sum())
+        wk = self.engine.to_pandas(wk).sort_values(["level", "week"])
+        users = int(self.engine.to_pandas(t.aggregate(u=t.user_id.nunique()))["u"].iloc[0])
+        levels = {}
+        for level, g in by.groupby("level"):
+            total = int(g["n"].sum())
+            counts = {lab: int(g.loc[g["label"] == lab, "n"].sum()) for lab in LABEL_VALUES}
+            w = wk[wk["level"] == level]
+            levels[str(int(level))] = {
+                "rows": total, "labels": counts,
+                "new_interest_share": _share(counts["new_interest"], total),
+                "discovery_share": _share(int(g["disc"].sum()), total),
+                "boosted_share": _share(int(g["boosted"].sum()), total),
+                "unplaced_share": _share(counts["unplaced"], total),
+                "new_interest_rate_by_week": [
+                    {"week": str(r.week), "rows": int(r.n), "new_interest_rate": _share(int(r.new), int(r.n))}
+                    for r in w.itertuples()]}
+        return {"taxonomy_version": self.taxonomy_version, "labels_version": self.labels_version,
+                "tool_version": __version__, "users": users, "input": {
+                    "source": self.intake.source, "rows": self.intake.rows_in, **self.counts,
+                    "notes": self.intake.notes},
+                "as_of": _iso_us(self.as_of_us), "config": json.loads(self.config.canonical_json()),
+                "levels": levels}
+
+    # -- writing --------------------------------------------------------------------------------
+    def write(self, out_dir: str | os.PathLike) -> dict[str, Any]:
+        """Write labels (Parquet partitioned by date), footprints and summary.json atomically."""
+        out = Path(out_dir)
+        out.mkdir(parents=True, exist_ok=True)
+        tmp = out / f".tmp-{uuid.uuid4().hex}"
+        tmp.mkdir()
+        n = _write_partitioned(self, tmp / "labels")
+        fp = self.footprints_arrow()
+        pq.write_table(fp, tmp / "footprints.parquet", row_group_size=ROW_GROUP)
+        summary = self.summary()
+        summary["outputs"] = {"labels_rows": n, "footprints_rows": fp.num_rows,
+                              "labels_content_hash": self.content_hash()}
+        (tmp / "summary.json").write_text(json.dumps(summary, indent=2, sort_keys=True) + "\n")
+        for name in ("labels", "footprints.parquet", "summary.json"):  # summary.json goes last
+            dest = out / name
+            if dest.exists():
+                trash = out / f".old-{uuid.uuid4().hex}"
+                os.replace(dest, trash)
+                shutil.rmtree(trash, ignore_errors=True) if trash.is_dir() else trash.unlink()
+            os.replace(tmp / name, dest)
+        tmp.rmdir()
+        log.info("wrote %d label rows and %d footprint rows to %s", n, fp.num_rows, out)
+        return summary
+
+
+_CANON_COLUMNS = ("user_id", "item_id", "ts_us", "event_id", "level", "topic_id", "label", "engaged",
+                  "discovery", "reward_multiplier", "shaped_reward", "history_len", "known_topics")
+
+
+def _share(a: int, b: int) -> float:
+    return round(a / b, 6) if b else 0.0
+
+
+def _iso_us(us: int | None) -> str | None:
+    if us is None:
+        return None
+    return pd.Timestamp(us, unit="us", tz="UTC").isoformat()
+
+
+def _finish_labels(t: pa.Table, tax_version: str, labels_version: str) -> pa.Table:
+    n = t.num_rows
+    t = t.append_column("taxonomy_version", pa.array([tax_version] * n, pa.string()))
+    t = t.append_column("labels_version", pa.array([labels_version] * n, pa.string()))
+    return t.select(list(LABELS_COLUMNS)).cast(LABELS_SCHEMA)
+
+
+def _finish_footprints(t: pa.Table) -> pa.Table:
+    since = pc.cast(t.column("known_since_us"), pa.timestamp("us", tz="UTC"))
+    t = t.drop_columns(["known_since_us"]).append_column("known_since", since)
+    return t.select(list(FOOTPRINTS_COLUMNS)).cast(FOOTPRINTS_SCHEMA)
+
+
+def _write_partitioned(run: LabelRun, root: Path) -> int:
+    """Stream labels sorted by (date, user, ts, ...) into one Parquet file per UTC date.
+
+    Row groups have a fixed size whatever the engine's batch sizes, so the bytes are repeatable.
+    """
+    t = run.labels.mutate(date=run.labels.ts.date().cast("string"))
+    t = t.order_by([t.date] + [ibis.asc(t[k], nulls_first=False) for k in SORT_KEYS])
+    root.mkdir(parents=True)
+    total, writer, current, pending = 0, None, None, []
+
+    def flush(final: bool) -> None:
+        nonlocal pending
+        if not pending:
+            return
+        tbl = pa.concat_tables(pending)
+        while tbl.num_rows >= ROW_GROUP or (final and tbl.num_rows):
+            writer.write_table(tbl.slice(0, ROW_GROUP), row_group_size=ROW_GROUP)
+            tbl = tbl.slice(ROW_GROUP)
+        pending = [tbl] if tbl.num_rows else []
+
+    for batch in run.engine.con.to_pyarrow_batches(t, chunk_size=65_536):
+        dates = batch.column(batch.schema.get_field_index("date"))
+        for date in pc.unique(dates).to_pylist():
+            part = pa.Table.from_batches([batch.filter(pc.equal(dates, date))]).drop_columns(
+                ["date", "ts_us"])
+            if date != current:
+                flush(True)
+                if writer is not None:
+                    writer.close()
+                (root / f"date={date}").mkdir()
+                writer = pq.ParquetWriter(root / f"date={date}" / "part-0.parquet", LABELS_SCHEMA)
+                current = date
+            pending.append(_finish_labels(part, run.taxonomy_version, run.labels_version))
+            total += part.num_rows
+            flush(False)
+    flush(True)
+    if writer is not None:
+        writer.close()
+    return total
+
+
+def plan_labels(interactions, taxonomy, config: LabelConfig | None = None, *,
+                input_config: InputConfig | None = None, engine: Engine | None = None,
+                as_of=None, source: str | None = None) -> LabelRun:
+    """Validate the inputs and plan labels and footprints on ``engine`` (DuckDB by default)."""
+    cfg = config or LabelConfig()
+    eng = engine or make_engine()
+    ev, intake = interactions_table(eng, interactions, input_config, source)
+    it, levels, has_valid = item_topics_table(eng, taxonomy, cfg)
+    input_hash = eng.content_hash(ev, ("user_id", "item_id", "ts_us", "engagement", "event_id",
+                                       "event_type"))
+    prepared = prepare(ev, cfg).cache()
+    counts = _intake_counts(eng, ev, prepared, it, cfg)
+    rows = with_support(topic_rows(prepared, it, levels, has_valid), cfg).cache()
+    transitions = known_transitions(rows, cfg).cache()
+    labels = label_rows(rows, known_topic_counts(rows, transitions), cfg)
+    if as_of is None:
+        as_of_us = counts.pop("_max_ts_us")
+    else:
+        counts.pop("_max_ts_us")
+        as_of_us = int(pd.Timestamp(as_of).tz_convert("UTC").value // 1000) if pd.Timestamp(as_of).tz \
+            else int(pd.Timestamp(as_of, tz="UTC").value // 1000)
+    footprints = footprint_rows(rows, transitions, cfg, as_of_us)
+    version = hashlib.sha256("\x00".join([taxonomy.version, cfg.canonical_json(), input_hash,
+                                          __version__]).encode()).hexdigest()
+    return LabelRun(eng, cfg, taxonomy.version, version, labels, footprints, as_of_us, intake, counts)
+
+
+def _intake_counts(eng, ev, prepared, it, cfg) -> dict[str, int]:
+    n_in = int(eng.to_pandas(ev.aggregate(n=ev.count()))["n"].iloc[0])
+    typed = ev.filter(ev.event_type.isin(list(cfg.event_types))) if cfg.event_types is not None else ev
+    n_typed = int(eng.to_pandas(typed.aggregate(n=typed.count()))["n"].iloc[0])
+    stats = eng.to_pandas(prepared.aggregate(n=prepared.count(), mx=prepared.ts_us.max()))
+    n_out = int(stats["n"].iloc[0])
+    known_items = it.select("item_id").distinct()
+    unknown = prepared.anti_join(known_items, "item_id")
+    n_unknown = int(eng.to_pandas(unknown.aggregate(n=unknown.count()))["n"].iloc[0])
+    return {"dropped_event_type": n_in - n_typed, "duplicate_events_collapsed": n_typed - n_out,
+            "interactions_labelled": n_out, "interactions_on_items_without_topics": n_unknown,
+            "_max_ts_us": int(stats["mx"].iloc[0]) if n_out else None}
+
+
+def label_interactions(interactions, taxonomy, config: LabelConfig | None = None, **kwargs) -> pd.DataFrame:
+    """The labels table, sorted by user_id, ts, event_id, item_id, level (see DESIGN.md).
+
+    >>> import pandas as pd
+    >>> from labeler.taxonomy import Taxonomy
+    >>> items = pd.DataFrame({"item_id": ["a", "b"], "category": ["knitting", "bonsai"]})
+    >>> tax = Taxonomy.from_categories(items)
+    >>> log = pd.DataFrame({"user_id": ["u1"] * 3, "item_id": ["a", "a", "b"],
+    ...                     "ts": ["2026-03-01T10:00:00Z", "2026-03-02T10:00:00Z", "2026-03-03T10:00:00Z"]})
+    >>> label_interactions(log, tax)["label"].tolist()
+    ['cold_start', 'in_profile', 'new_interest']
+    """
+    return plan_labels(interactions, taxonomy, config, **kwargs).labels_frame()
+
+
+def build_footprints(interactions, taxonomy, config: LabelConfig | None = None, **kwargs) -> pd.DataFrame:
+    """The footprints table as of the last input timestamp (or ``as_of=``)."""
+    return plan_labels(interactions, taxonomy, config, **kwargs).footprints_frame()

@@ -1,0 +1,171 @@
+"""Footprints and interaction labels: the rules of DESIGN.md, written once as Ibis expressions.
+
+Every function here maps table expressions to table expressions and never asks which engine runs
+them. Time is handled as integer microseconds since the epoch (``ts_us``), so "strictly before t"
+is the range frame ``[.., t - 1]`` and the memory window ``[t - M, t)`` is ``[t - M, t - 1]`` on
+every engine alike.
+
+Steps, for each interaction e = (u, i, t) and level L:
+
+1. ``prepare``: drop rows whose ``event_type`` is not listed, collapse duplicate events (same
+   user, item, ts and event_id: the row with the highest engagement is kept), and count them;
+   ``history_len`` = number of the user's interactions strictly before t (rank over ts).
+2. ``topic_rows``: one row per (interaction, level, item topic), as of t; no topic = unplaced.
+3. ``support``: qualifying interactions of u on topic T in the window before t; T is known at t
+   when support >= ``min_support``.
+4. ``known_transitions``: the moments each (u, L, T) becomes known or stops being known; their
+   running sum gives ``known_topics`` = |F_u(t)| at any t.
+5. ``label_rows``: the label, the topic named, discovery, boost, multiplier and shaped reward.
+"""
+from __future__ import annotations
+
+import ibis
+import ibis.expr.types as ir
+
+from .config import LabelConfig
+
+INTERACTION_KEY = ("user_id", "item_id", "ts_us", "event_id")
+
+
+def _i64(value) -> ir.Value:
+    return ibis.literal(value, type="int64")
+
+
+def prepare(ev: ir.Table, cfg: LabelConfig) -> ir.Table:
+    """Filter event types, collapse duplicate events, and add ``history_len``.
+
+    ``ev`` has user_id, item_id, ts, ts_us, engagement, event_id, event_type.
+    """
+    if cfg.event_types is not None:
+        ev = ev.filter(ev.event_type.isin(list(cfg.event_types)))
+    dup_rank = ibis.row_number().over(group_by=[ev[c] for c in INTERACTION_KEY],
+                                      order_by=[ibis.desc(ev.engagement), ev.event_type])
+    ev = ev.mutate(_dup=dup_rank).filter(lambda t: t._dup == 0).drop("_dup")
+    return ev.mutate(history_len=ibis.rank().over(group_by=ev.user_id, order_by=ev.ts_us))
+
+
+def topic_rows(ev: ir.Table, item_topics: ir.Table, levels: ir.Table, as_of: bool) -> ir.Table:
+    """One row per (interaction, level, topic valid at its time); topic_id null when unplaced.
+
+    ``item_topics`` has item_id, level, topic_id, pos (0 = primary), nb (no-boost flag) and, when
+    ``as_of``, valid_from_us / valid_to_us.
+    """
+    grid = ev.cross_join(levels)
+    it = item_topics.rename(it_item_id="item_id", it_level="level")
+    preds = [grid.item_id == it.it_item_id, grid.level == it.it_level]
+    if as_of:
+        preds += [it.valid_from_us <= grid.ts_us, grid.ts_us < it.valid_to_us]
+    joined = grid.left_join(it, preds)
+    return joined.select(*[c for c in joined.columns if c not in (
+        "it_item_id", "it_level", "valid_from_us", "valid_to_us")])
+
+
+def qualifies(rows: ir.Table, cfg: LabelConfig) -> ir.Value:
+    """Placed, and engaged when footprints are built from engaged interactions only."""
+    placed = rows.topic_id.notnull()
+    if cfg.footprint_from == "engaged":
+        return placed & (rows.engagement >= cfg.engaged_min)
+    return placed
+
+
+def with_support(rows: ir.Table, cfg: LabelConfig) -> ir.Table:
+    """Add ``known``: qualifying interactions of (u, L, T) strictly before t reach min_support."""
+    lower = None if cfg.memory_us is None else -cfg.memory_us
+    w = ibis.window(group_by=[rows.user_id, rows.level, rows.topic_id], order_by=rows.ts_us,
+                    range=(lower, -1))
+    support = qualifies(rows, cfg).cast("int64").sum().over(w).fill_null(0)
+    return rows.mutate(known=rows.topic_id.notnull() & (support >= cfg.min_support))
+
+
+def known_transitions(rows: ir.Table, cfg: LabelConfig) -> ir.Table:
+    """(user_id, level, topic_id, p, d): at time p the topic becomes known (d=+1) or not (d=-1).
+
+    A topic is known at t when d summed over p <= t is 1. Without memory it becomes known once,
+    just after its min_support-th qualifying interaction.
+    """
+    qual = rows.filter(qualifies(rows, cfg)).select("user_id", "level", "topic_id", "ts_us")
+    keys = [qual.user_id, qual.level, qual.topic_id]
+    if cfg.memory_us is None:
+        nth = ibis.row_number().over(group_by=keys, order_by=qual.ts_us)
+        kth = qual.mutate(_n=nth).filter(lambda t: t._n == cfg.min_support - 1)
+        return kth.select("user_id", "level", "topic_id", p=kth.ts_us + 1, d=_i64(1))
+    enter = qual.select("user_id", "level", "topic_id", p=qual.ts_us + 1, d=_i64(1))
+    leave = qual.select("user_id", "level", "topic_id", p=qual.ts_us + (cfg.memory_us + 1), d=_i64(-1))
+    steps = enter.union(leave, distinct=False).group_by(["user_id", "level", "topic_id", "p"]).aggregate(
+        d=lambda t: t.d.sum())
+    w = ibis.cumulative_window(group_by=[steps.user_id, steps.level, steps.topic_id], order_by=steps.p)
+    steps = steps.mutate(_known=(steps.d.sum().over(w) >= cfg.min_support).cast("int64"))
+    prev = steps._known.lag().over(group_by=[steps.user_id, steps.level, steps.topic_id],
+                                   order_by=steps.p).fill_null(0)
+    steps = steps.mutate(_delta=steps._known - prev)
+    return steps.filter(steps._delta != 0).select("user_id", "level", "topic_id", "p", d=steps._delta)
+
+
+def known_topic_counts(points: ir.Table, transitions: ir.Table) -> ir.Table:
+    """known_topics at each distinct (user_id, level, ts_us) of ``points``."""
+    pts = points.select("user_id", "level", "ts_us").distinct()
+    tl = pts.select("user_id", "level", p=pts.ts_us, d=_i64(0), is_point=ibis.literal(True)).union(
+        transitions.select("user_id", "level", "p", "d", is_point=ibis.literal(False)), distinct=False)
+    w = ibis.window(group_by=[tl.user_id, tl.level], order_by=tl.p, range=(None, 0))
+    tl = tl.mutate(known_topics=tl.d.sum().over(w))
+    return tl.filter(tl.is_point).select("user_id", "level", ts_us=tl.p, known_topics=tl.known_topics)
+
+
+def label_rows(rows: ir.Table, counts: ir.Table, cfg: LabelConfig) -> ir.Table:
+    """Collapse topic rows to one row per (interaction, level) and apply the label rules."""
+    placed = rows.topic_id.notnull()
+    g = rows.group_by(["user_id", "item_id", "ts_us", "event_id", "level"]).aggregate(
+        ts=rows.ts.max(), engagement=rows.engagement.max(), history_len=rows.history_len.max(),
+        n_topics=placed.cast("int64").sum(),
+        n_known=(placed & rows.known).cast("int64").sum(),
+        first_known=rows.topic_id.argmin(rows.pos, where=placed & rows.known),
+        first_unknown=rows.topic_id.argmin(rows.pos, where=placed & ~rows.known),
+        primary=rows.topic_id.argmin(rows.pos, where=placed),
+        blocked=(placed & rows.nb).cast("int64").max())
+    j = g.left_join(counts, ["user_id", "level", "ts_us"])
+    g = j.select(*g.columns, known_topics=j.known_topics.fill_null(0))
+    in_profile = (g.n_known >= 1) if cfg.multi_topic == "all_new" else (g.n_known == g.n_topics)
+    label = ibis.cases((g.n_topics == 0, "unplaced"), (g.history_len < cfg.warmup, "cold_start"),
+                       (in_profile, "in_profile"), else_="new_interest")
+    g = g.mutate(label=label)
+    topic = ibis.cases((g.label == "in_profile", g.first_known),
+                       (g.label == "new_interest", g.first_unknown), else_=g.primary)
+    engaged = g.engagement >= cfg.engaged_min
+    is_new = g.label == "new_interest"
+    boosted = is_new & (g.engagement > 0) & (g.blocked.fill_null(0) == 0)
+    if cfg.boost_on == "discovery":
+        boosted = boosted & engaged
+    multiplier = ibis.ifelse(boosted, ibis.literal(float(cfg.multiplier)), ibis.literal(1.0))
+    out = g.mutate(topic_id=topic, engaged=engaged, discovery=is_new & engaged,
+                   reward_multiplier=multiplier, shaped_reward=g.engagement * multiplier)
+    if cfg.label_from is not None:
+        from_us = int(cfg.label_from.timestamp() * 1_000_000)
+        out = out.filter(out.ts_us >= from_us)
+    return out.select("user_id", "item_id", "ts", "ts_us", "event_id", "level", "topic_id", "label",
+                      "engaged", "discovery", "reward_multiplier", "shaped_reward",
+                      out.history_len.cast("int64").name("history_len"),
+                      out.known_topics.cast("int64").name("known_topics"))
+
+
+def footprint_rows(rows: ir.Table, transitions: ir.Table, cfg: LabelConfig, as_of_us: int) -> ir.Table:
+    """The footprints table as seen by an interaction just after ``as_of_us``.
+
+    One row per (user, level, topic) touched by a qualifying interaction at or before ``as_of_us``.
+    """
+    end = as_of_us + 1
+    qual = rows.filter(qualifies(rows, cfg) & (rows.ts_us <= as_of_us))
+    in_window = qual.ts_us >= (end - cfg.memory_us) if cfg.memory_us is not None else qual.ts_us.notnull()
+    agg = qual.group_by(["user_id", "level", "topic_id"]).aggregate(
+        first_ts=qual.ts.min(), last_ts=qual.ts.max(), interactions=qual.count(),
+        engaged_interactions=(qual.engagement >= cfg.engaged_min).cast("int64").sum(),
+        _support=in_window.cast("int64").sum())
+    tr = transitions.filter((transitions.p <= end) & (transitions.d > 0))
+    since = tr.group_by(["user_id", "level", "topic_id"]).aggregate(_since_us=tr.p.max() - 1)
+    j = agg.left_join(since, ["user_id", "level", "topic_id"])
+    out = j.select(*agg.columns, _since_us=j._since_us)
+    known = out._support >= cfg.min_support
+    return out.select("user_id", "level", "topic_id", "first_ts", "last_ts",
+                      out.interactions.cast("int64").name("interactions"),
+                      out.engaged_interactions.cast("int64").name("engaged_interactions"),
+                      known.name("known"), ibis.ifelse(known, out._since_us, ibis.null("int64"))
+                      .name("known_since_us"))

@@ -1,0 +1,197 @@
+"""Learn a two-level taxonomy from item text.
+
+Steps: embed (cached by content hash) -> L2 normalise -> PCA -> L2 normalise -> HDBSCAN on a
+sample (at most ``fit_sample_cap`` items) -> fine topics (level 1) as cluster centroids -> every
+item placed at its nearest centroid, with confidence = cosine similarity, unplaced below
+``min_confidence`` -> coarse topics (level 0) by agglomerating fine centroids -> names by
+class-based TF-IDF -> ids matched to a previous taxonomy by item overlap.
+
+Placing every item at its nearest centroid (HDBSCAN finds the topics, the centroids place the
+items) makes ``Taxonomy.assign`` on the build items reproduce the build exactly.
+"""
+from __future__ import annotations
+
+import logging
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .. import __version__
+from ..config import TaxonomyConfig
+from ..embed import EmbeddingCache, SentenceEmbedder, embed_texts
+from ..tables import item_text, normalize_items
+from .ids import format_id, id_number, match_topics, members_by_topic
+from .model import FORMAT, Taxonomy, hash_strings, items_empty_text, placement_rows
+from .names import class_tfidf_keywords, readable_name
+
+log = logging.getLogger(__name__)
+
+
+def embed_items(items: pd.DataFrame, cfg: dict, embedder, progress: bool = True):
+    texts = item_text(items, cfg["text_columns"]).tolist()
+    cache = EmbeddingCache(cfg["embedding_cache"], embedder.name) if cfg.get("embedding_cache") else None
+    return embed_texts(texts, embedder, cache, batch_size=max(cfg.get("batch_size", 64), 1) * 4,
+                       progress=progress)
+
+
+def _reduce(vectors: np.ndarray, arrays: dict) -> np.ndarray:
+    z = (vectors - arrays["pca_mean"]) @ arrays["pca_components"].T
+    n = np.linalg.norm(z, axis=1, keepdims=True)
+    n[n == 0] = 1.0
+    return z / n
+
+
+def place(vectors: np.ndarray, arrays: dict) -> tuple[np.ndarray, np.ndarray]:
+    """Nearest fine centroid and its cosine similarity (clipped to [0, 1]) for each vector."""
+    z = _reduce(vectors, arrays)
+    sims = z @ arrays["centroids"].T
+    best = np.argmax(sims, axis=1)
+    conf = np.clip(sims[np.arange(len(z)), best], 0.0, 1.0)
+    return best, conf
+
+
+def _fit_pca(x: np.ndarray, k: int, seed: int) -> dict:
+    from sklearn.decomposition import PCA
+    k = max(1, min(k, x.shape[0] - 1, x.shape[1]))
+    pca = PCA(n_components=k, svd_solver="full" if x.shape[0] <= 5000 else "randomized", random_state=seed)
+    pca.fit(x)
+    comps = pca.components_.astype(np.float32)
+    # fix each component's sign so the artifact is identical across LAPACK builds
+    signs = np.sign(comps[np.arange(len(comps)), np.argmax(np.abs(comps), axis=1)])
+    return {"pca_mean": pca.mean_.astype(np.float32), "pca_components": comps * signs[:, None]}
+
+
+def _cluster(z: np.ndarray, cfg: TaxonomyConfig) -> np.ndarray:
+    import hdbscan
+    if len(z) < max(cfg.min_cluster_size, 2) or len(np.unique(np.round(z, 5), axis=0)) < 2:
+        return np.zeros(len(z), dtype=int)
+    model = hdbscan.HDBSCAN(min_cluster_size=cfg.min_cluster_size, min_samples=cfg.min_samples,
+                            metric="euclidean", cluster_selection_method="eom", core_dist_n_jobs=1)
+    labels = model.fit_predict(z.astype(np.float64))
+    if labels.max() < 0:  # nothing dense enough: one topic holds everything (documented)
+        return np.zeros(len(z), dtype=int)
+    return labels
+
+
+def _coarse(centroids: np.ndarray, cfg: TaxonomyConfig) -> np.ndarray:
+    """Group fine centroids into coarse topics with Ward linkage.
+
+    Without ``coarse_topics`` the count is where the dendrogram has its largest relative jump in
+    merge height, among counts from 2 to a third of the fine topics (a coarse level should be
+    clearly coarser than the fine one).
+    """
+    from scipy.cluster.hierarchy import fcluster, linkage
+    n = len(centroids)
+    if n <= 2:
+        return np.zeros(n, dtype=int)
+    tree = linkage(centroids.astype(np.float64), method="ward")
+    if cfg.coarse_topics is not None:
+        k = min(cfg.coarse_topics, n)
+    else:
+        heights = tree[:, 2]  # heights[j] merges n - j clusters into n - j - 1
+        k_max = max(2, n // 3)
+        # going from k clusters to k - 1 costs heights[n - k]; the jump over the previous merge
+        jumps = {k: heights[n - k] / max(heights[n - k - 1], 1e-12) for k in range(2, k_max + 1)}
+        k = max(jumps, key=lambda kk: (jumps[kk], -kk))
+    labels = fcluster(tree, t=k, criterion="maxclust") - 1
+    return labels.astype(int)
+
+
+def _input_version(items: pd.DataFrame, cfg: TaxonomyConfig, model: str, previous) -> str:
+    texts = item_text(items, cfg.text_columns)
+    return hash_strings([FORMAT, "learned", __version__, model, cfg.canonical_json(),
+                         previous.version if previous is not None else "",
+                         *sorted(f"{i}\x01{t}" for i, t in zip(items["item_id"], texts))])
+
+
+def build_taxonomy(items: pd.DataFrame, config: TaxonomyConfig | None = None, *, embedder=None,
+                   previous: Taxonomy | None = None, progress: bool = True,
+                   source: str = "items") -> Taxonomy:
+    """Learn a two-level taxonomy from the items' text (see the module docstring for the steps).
+
+    >>> from labeler.embed import HashingEmbedder
+    >>> df = pd.DataFrame({"item_id": [f"i{k}" for k in range(40)],
+    ...                    "title": ["sourdough bread"] * 20 + ["bonsai wiring"] * 20})
+    >>> tax = build_taxonomy(df, TaxonomyConfig(min_cluster_size=5), embedder=HashingEmbedder(64),
+    ...                      progress=False)
+    >>> int(tax.topics.query("level == 1").shape[0]) >= 1
+    True
+    """
+    cfg = config or TaxonomyConfig()
+    items, intake = normalize_items(items, cfg.text_columns, source=source)
+    embedder = embedder or SentenceEmbedder(cfg.model, cfg.model_path, cfg.batch_size)
+    cfgd = cfg.model_dump(mode="json")
+    version = _input_version(items, cfg, embedder.name, previous)
+    vectors, stats = embed_items(items, cfgd, embedder, progress=progress)
+    empty = items_empty_text(items, cfgd)
+    usable = np.flatnonzero(~empty)
+    rng = np.random.default_rng(cfg.seed)
+    fit_idx = usable if len(usable) <= cfg.fit_sample_cap else np.sort(
+        rng.choice(usable, size=cfg.fit_sample_cap, replace=False))
+    if len(fit_idx) == 0:
+        fit_idx = np.arange(len(items))
+    arrays = _fit_pca(vectors[fit_idx], cfg.pca_components, cfg.seed)
+    z_fit = _reduce(vectors[fit_idx], arrays)
+    labels = _cluster(z_fit, cfg)
+    clusters = sorted(set(labels.tolist()) - {-1})
+    centroids = np.vstack([z_fit[labels == c].mean(axis=0) for c in clusters])
+    centroids /= np.maximum(np.linalg.norm(centroids, axis=1, keepdims=True), 1e-12)
+    arrays["centroids"] = centroids.astype(np.float32)
+    fine_idx, conf = place(vectors, arrays)
+    placed = (conf >= cfg.min_confidence) & ~empty
+    coarse_of_fine = _coarse(arrays["centroids"], cfg)
+
+    # stable ids: match coarse then fine clusters to the previous taxonomy by item overlap
+    item_ids = items["item_id"].to_numpy()
+    fine_members = {c: set(item_ids[placed & (fine_idx == c)]) for c in range(len(clusters))}
+    coarse_members = {g: set().union(*(fine_members[c] for c in range(len(clusters))
+                                       if coarse_of_fine[c] == g)) for g in set(coarse_of_fine.tolist())}
+    ids: dict[tuple[int, int], str] = {}
+    first_version: dict[str, str] = {}
+    next_id = 0
+    if previous is not None:
+        prev_ids = previous.topics["topic_id"].tolist()
+        next_id = max([id_number(t) for t in prev_ids] + [-1]) + 1
+        first_version = dict(zip(previous.topics["topic_id"], previous.topics["first_version"]))
+        for level, members in ((0, coarse_members), (1, fine_members)):
+            for key, tid in match_topics(members, members_by_topic(previous.item_topics, level),
+                                         cfg.id_match_min_jaccard).items():
+                ids[(level, key)] = tid
+    for level, members in ((0, coarse_members), (1, fine_members)):
+        order = sorted(members, key=lambda k: (-len(members[k]), min(members[k], default="")))
+        for key in order:
+            if (level, key) not in ids:
+                ids[(level, key)] = format_id(next_id)
+                next_id += 1
+    centroid_topics = [ids[(1, c)] for c in range(len(clusters))]
+
+    parent = {ids[(1, c)]: ids[(0, int(coarse_of_fine[c]))] for c in range(len(clusters))}
+    rows = placement_rows(item_ids, fine_idx, conf, empty, centroid_topics, parent, cfg.min_confidence)
+    texts = pd.Series(item_text(items, cfg.text_columns).to_numpy(), index=item_ids)
+    topic_rows = []
+    for level in (0, 1):
+        sub = rows[rows["level"] == level]
+        kw = class_tfidf_keywords(texts.loc[sub["item_id"]].reset_index(drop=True),
+                                  sub["topic_id"].reset_index(drop=True), cfg.keywords_per_topic)
+        size = sub.groupby("topic_id").size()
+        for tid in sorted(set(sub["topic_id"])):
+            topic_rows.append((tid, level, parent.get(tid) if level == 1 else None,
+                               readable_name(kw.get(tid, []), cfg.name_words), kw.get(tid, []),
+                               int(size[tid]), first_version.get(tid, version)))
+    topics = pd.DataFrame(topic_rows, columns=["topic_id", "level", "parent_id", "name", "keywords",
+                                               "size", "first_version"])
+    n_unplaced = int(len(items) - rows["item_id"].nunique())
+    manifest = {"format": FORMAT, "kind": "learned", "version": version, "tool_version": __version__,
+                "model": embedder.name, "config": cfgd, "n_items": int(len(items)),
+                "n_fit_sample": int(len(fit_idx)), "n_unplaced": n_unplaced,
+                "n_empty_text": int(empty.sum()), "n_noise_in_fit": int((labels == -1).sum()),
+                "topics_per_level": {str(l): int((topics["level"] == l).sum()) for l in (0, 1)},
+                "previous_version": previous.version if previous is not None else None,
+                "embedding_cache": {"hits": stats.hits, "misses": stats.misses}}
+    log.info("taxonomy %s: %d coarse / %d fine topics, %d of %d items unplaced (%.1f%%)", version[:12],
+             manifest["topics_per_level"]["0"], manifest["topics_per_level"]["1"], n_unplaced,
+             len(items), 100.0 * n_unplaced / max(len(items), 1))
+    out = Taxonomy(topics, rows, manifest, arrays, centroid_topics)
+    out.last_embed_stats = stats
+    return out
