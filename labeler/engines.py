@@ -49,6 +49,9 @@ class Engine:
     def to_pandas(self, expr) -> pd.DataFrame:
         return self.to_arrow(expr).to_pandas()
 
+    def to_batches(self, expr, rows: int = 65_536):
+        return self.con.to_pyarrow_batches(expr, chunk_size=rows)
+
 
 class DuckDBEngine(Engine):
     name = "duckdb"
@@ -64,6 +67,11 @@ class DuckDBEngine(Engine):
 
     def raw_sql(self, sql: str):
         return self.con.con.execute(sql)
+
+    def to_batches(self, expr, rows: int = 65_536):
+        """Stream the result as Arrow record batches (ibis 12's streaming predates duckdb 2.0)."""
+        sql = self.con.compile(expr)
+        return self.con.con.sql(sql).to_arrow_reader(rows)
 
     def content_hash(self, expr, columns, extra: str = "") -> str:
         """Order-independent hash of the rows of ``expr`` over ``columns``.

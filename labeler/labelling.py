@@ -191,7 +191,7 @@ def _write_partitioned(run: LabelRun, root: Path) -> int:
             tbl = tbl.slice(ROW_GROUP)
         pending = [tbl] if tbl.num_rows else []
 
-    for batch in run.engine.con.to_pyarrow_batches(t, chunk_size=65_536):
+    for batch in run.engine.to_batches(t):
         dates = batch.column(batch.schema.get_field_index("date"))
         for date in pc.unique(dates).to_pylist():
             part = pa.Table.from_batches([batch.filter(pc.equal(dates, date))]).drop_columns(

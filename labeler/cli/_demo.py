@@ -1,0 +1,38 @@
+"""`labeler demo`."""
+from __future__ import annotations
+
+from ..demo import run_demo
+from ._options import add_common, add_embedder
+
+
+def register(sub) -> None:
+    p = sub.add_parser("demo", help="generate the invented demo scenario and run every stage on it")
+    p.add_argument("--out", default="demo-out", help="output folder (default demo-out)")
+    p.add_argument("--seed", type=int, default=7, help="scenario seed (default 7)")
+    p.add_argument("--small", action="store_true", help="a smaller scenario, for a quick look")
+    add_embedder(p)
+    add_common(p, config=False)
+    p.set_defaults(run=run)
+
+
+def run(args) -> int:
+    from ..embed import HashingEmbedder
+    embedder = HashingEmbedder(256) if args.embedder == "hashing" else None
+    s = run_demo(args.out, seed=args.seed, embedder=embedder, progress=not args.quiet, small=args.small)
+    t, lab = s["taxonomy"], s["labels"]
+    print(f"demo scenario (seed {s['seed']}): {s['items']} items, {s['interactions']} interactions, "
+          f"{s['users']} users -> {args.out}/data/")
+    print(f"taxonomy {t['version'][:12]}: {t['topics_per_level']['0']} coarse / "
+          f"{t['topics_per_level']['1']} fine topics, {t['unplaced']} items unplaced; "
+          f"fine-topic AMI vs true themes {t['level1_ami_vs_true_theme']:.3f}, "
+          f"coarse AMI vs true hobbies {t['level0_ami_vs_true_hobby']:.3f} -> {t['dir']}")
+    for level, v in sorted(lab["levels"].items()):
+        c = v["labels"]
+        print(f"labels level {level}: in_profile {c['in_profile']}, new_interest {c['new_interest']}, "
+              f"cold_start {c['cold_start']}, unplaced {c['unplaced']}; discovery "
+              f"{100 * v['discovery_share']:.1f}%")
+    print(f"true new-interest events after the burn-in ({lab['label_from'][:10]}): "
+          f"{lab['true_new_interest_events_after_burn_in']}, labelled new_interest at level 1: "
+          f"{100 * lab['share_labelled_new_interest_level1']:.1f}%")
+    print(f"outputs: {lab['dir']}/ and {args.out}/demo-summary.json")
+    return 0
