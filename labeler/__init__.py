@@ -1,2 +1,17 @@
-"""labeler: in-profile or new-interest, one answer per interaction."""
+"""labeler: in-profile or new interest, one consistent answer per interaction.
+
+>>> import labeler
+>>> sorted(n for n in labeler.__all__ if n.startswith("build"))
+['build_footprints', 'build_taxonomy']
+"""
 __version__ = "0.1.0"
+
+from .config import EngineConfig, GateConfig, InputConfig, JobConfig, LabelConfig, TaxonomyConfig, \
+    load_job_config
+from .errors import ArtifactError, ConfigError, InputError, LabelerError, ModelNotFoundError
+from .labelling import build_footprints, label_interactions, plan_labels
+from .taxonomy import Taxonomy, build_taxonomy
+
+__all__ = ["ArtifactError", "ConfigError", "EngineConfig", "GateConfig", "InputConfig", "InputError",
+           "JobConfig", "LabelConfig", "LabelerError", "ModelNotFoundError", "Taxonomy", "TaxonomyConfig",
+           "build_footprints", "build_taxonomy", "label_interactions", "load_job_config", "plan_labels"]

@@ -140,8 +140,8 @@ def item_topics_table(engine, tax, cfg: LabelConfig):
                                        (vf.astype("datetime64[us, UTC]").astype("int64")))
         starts = it[["item_id", "level", "valid_from_us"]].drop_duplicates().sort_values(
             ["item_id", "level", "valid_from_us"])
-        starts["valid_to_us"] = starts.groupby(["item_id", "level"])["valid_from_us"].shift(-1).fillna(
-            np.iinfo("int64").max).astype("int64")
+        nxt = starts.groupby(["item_id", "level"])["valid_from_us"].shift(-1).astype("Int64")
+        starts["valid_to_us"] = nxt.fillna(np.iinfo("int64").max).astype("int64")
         it = it.merge(starts, on=["item_id", "level", "valid_from_us"])
     keys = ["item_id", "level"] + (["valid_from_us"] if has_valid else [])
     it = it.sort_values(keys + ["confidence", "topic_id"], ascending=[True] * len(keys) + [False, True],

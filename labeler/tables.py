@@ -132,6 +132,9 @@ def normalize_timestamps(df: pd.DataFrame, column: str, source: str, cfg: InputC
     s = df[column]
     if pd.api.types.is_bool_dtype(s):
         raise InputError("booleans are not timestamps.", source=source, column=column)
+    if (s.dtype == object or pd.api.types.is_string_dtype(s)) and s.notna().all() and \
+            s.astype(str).str.fullmatch(r"\s*-?\d+\s*").all():
+        s = s.astype(str).str.strip().astype("int64")  # integer epochs written as text (CSV)
     if pd.api.types.is_numeric_dtype(s) and not pd.api.types.is_datetime64_any_dtype(s):
         if cfg.epoch_unit is None:
             raise InputError("integer epoch timestamps need an explicit unit.", source=source,
@@ -157,6 +160,11 @@ def normalize_timestamps(df: pd.DataFrame, column: str, source: str, cfg: InputC
                              sample=_sample(df, s.isna(), [*INTERACTIONS_REQUIRED]),
                              hint="Every interaction needs a time.")
         text = s.astype(str).str.strip()
+        unparsable = pd.to_datetime(text, format="ISO8601", errors="coerce", utc=True).isna()
+        if unparsable.any():
+            raise InputError(f"{int(unparsable.sum())} unparsable timestamp(s).", source=source,
+                             column=column, sample=_sample(df, unparsable, [column]),
+                             hint="Use ISO 8601 text, e.g. '2026-03-01T10:00:00Z'.")
         aware = text.str.contains(_TZ_SUFFIX, regex=True)
         if (~aware).any() and cfg.timezone is None:
             raise InputError("naive timestamps (no timezone) and no timezone configured.",
@@ -166,14 +174,7 @@ def normalize_timestamps(df: pd.DataFrame, column: str, source: str, cfg: InputC
         parsed = pd.Series(pd.NaT, index=s.index, dtype="datetime64[us, UTC]")
         for mask, utc in ((aware, True), (~aware, False)):
             if mask.any():
-                try:
-                    part = pd.to_datetime(text[mask], format="ISO8601", utc=utc)
-                except (ValueError, TypeError) as exc:
-                    bad = mask & pd.to_datetime(text.where(mask), format="ISO8601", errors="coerce",
-                                                utc=True).isna()
-                    raise InputError(f"unparsable timestamp(s) ({exc}).", source=source, column=column,
-                                     sample=_sample(df, bad if bad.any() else mask, [column]),
-                                     hint="Use ISO 8601 text, e.g. '2026-03-01T10:00:00Z'.") from None
+                part = pd.to_datetime(text[mask], format="ISO8601", utc=utc)
                 if not utc:
                     part = part.dt.tz_localize(cfg.timezone, ambiguous="raise", nonexistent="raise")
                 parsed[mask] = part.dt.tz_convert("UTC").astype("datetime64[us, UTC]")

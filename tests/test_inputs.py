@@ -1,0 +1,111 @@
+"""Input contracts: every bad input gives exit code 2 and a message naming the column."""
+from __future__ import annotations
+
+import re
+
+import pandas as pd
+import pytest
+
+from labeler.config import InputConfig
+from labeler.errors import InputError
+from labeler.tables import normalize_interactions, normalize_items
+
+BAD_INTERACTIONS = [
+    ("misspelled_column.csv", r"'user_id' \(did you mean 'usr_id'\?\)"),
+    ("null_user.csv", r"column 'user_id': 1 null id"),
+    ("unparsable_ts.csv", r"column 'ts': 1 unparsable timestamp.*yesterday afternoon"),
+    ("naive_ts.csv", r"column 'ts': naive timestamps.*input.timezone"),
+    ("epoch_no_unit.csv", r"column 'ts': integer epoch timestamps need an explicit unit"),
+    ("nan_engagement.csv", r"column 'engagement': 1 null, NaN, infinite"),
+    ("inf_engagement.csv", r"column 'engagement': 1 null, NaN, infinite"),
+    ("empty.csv", r"no rows"),
+]
+
+
+@pytest.mark.parametrize("name,message", BAD_INTERACTIONS)
+def test_bad_interactions_exit_2_naming_the_column(cli, fixtures, tmp_path, name, message):
+    """Each broken interactions file stops `labeler label` with exit 2 and names file and column."""
+    code, _, err = cli("taxonomy", "build", "--items", fixtures / "items.csv", "--out", tmp_path / "tax",
+                       "--from-categories", "category", "-q")
+    assert code == 0, err
+    code, _, err = cli("label", "--taxonomy", tmp_path / "tax", "--interactions", fixtures / "bad" / name,
+                       "--out", tmp_path / "out", "-q")
+    assert code == 2
+    assert name in err
+    assert re.search(message, err), err
+
+
+def test_duplicate_item_ids_exit_2(cli, fixtures, tmp_path):
+    """An items snapshot with a repeated item id is rejected, naming item_id and the rows."""
+    code, _, err = cli("taxonomy", "build", "--items", fixtures / "bad" / "duplicate_items.csv",
+                       "--out", tmp_path / "tax", "--embedder", "hashing", "-q")
+    assert code == 2
+    assert "column 'item_id': 1 duplicate item id" in err and "k1" in err
+
+
+@pytest.mark.parametrize("name,message", [("unknown_key.toml", r"unknown key 'labels.min_suport'"),
+                                          ("wrong_type.toml", r"'labels.min_support'.*'two'")])
+def test_bad_config_exit_2(cli, fixtures, tmp_path, name, message):
+    """Unknown config keys and wrong types stop the run with exit 2 and name the key."""
+    code, _, err = cli("label", "--taxonomy", tmp_path, "--interactions", fixtures / "interactions.csv",
+                       "--out", tmp_path / "o", "--config", fixtures / "bad" / name)
+    assert code == 2
+    assert re.search(message, err), err
+
+
+def test_naive_timestamps_accepted_with_configured_timezone():
+    """A configured timezone localises naive timestamps, then converts them to UTC."""
+    df = pd.DataFrame({"user_id": ["a"], "item_id": ["x"], "ts": ["2026-03-02 09:00:00"]})
+    out, _ = normalize_interactions(df, InputConfig(timezone="Europe/Lisbon"))
+    assert str(out["ts"].iloc[0]) == "2026-03-02 09:00:00+00:00"
+    out, _ = normalize_interactions(df, InputConfig(timezone="America/New_York"))
+    assert str(out["ts"].iloc[0]) == "2026-03-02 14:00:00+00:00"
+
+
+def test_timestamps_truncated_to_microseconds():
+    """Digits finer than a microsecond are truncated, so every engine sees the same ties."""
+    df = pd.DataFrame({"user_id": ["a", "a"], "item_id": ["x", "y"],
+                       "ts": ["2026-03-02T09:00:00.1234567Z", "2026-03-02T09:00:00.1234561Z"]})
+    out, _ = normalize_interactions(df)
+    assert out["ts"].iloc[0] == out["ts"].iloc[1]
+    assert out["ts"].iloc[0].microsecond == 123456
+
+
+@pytest.mark.parametrize("unit,value", [("s", 1772442000), ("ms", 1772442000000), ("us", 1772442000000000),
+                                        ("ns", 1772442000000000999)])
+def test_epochs_with_explicit_unit(unit, value):
+    """Integer epochs are read in the configured unit."""
+    df = pd.DataFrame({"user_id": ["a"], "item_id": ["x"], "ts": [value]})
+    out, _ = normalize_interactions(df, InputConfig(epoch_unit=unit))
+    assert out["ts"].iloc[0] == pd.Timestamp("2026-03-02T09:00:00Z")
+
+
+def test_integer_ids_cast_and_said_so():
+    """Integer ids become strings and the intake report says so."""
+    df = pd.DataFrame({"user_id": [1, 2], "item_id": [10, 11], "ts": ["2026-03-02T09:00:00Z"] * 2})
+    out, intake = normalize_interactions(df)
+    assert out["user_id"].tolist() == ["1", "2"]
+    assert any("user_id" in n and "cast to strings" in n for n in intake.notes)
+
+
+def test_offsets_other_than_utc_are_converted():
+    """Mixed offsets are all converted to UTC."""
+    df = pd.DataFrame({"user_id": ["a", "a"], "item_id": ["x", "y"],
+                       "ts": ["2026-03-02T10:00:00+01:00", "2026-03-02T09:00:00Z"]})
+    out, _ = normalize_interactions(df)
+    assert out["ts"].iloc[0] == out["ts"].iloc[1]
+
+
+def test_items_without_any_text_column_rejected():
+    """An items table with none of the text columns is rejected with the columns present."""
+    with pytest.raises(InputError, match=r"none of the text columns.*Columns present: item_id, name"):
+        normalize_items(pd.DataFrame({"item_id": ["a"], "name": ["x"]}))
+
+
+def test_non_utf8_csv_rejected(tmp_path):
+    """A CSV file that is not UTF-8 gives a clear error, not a decoding traceback."""
+    from labeler.tables import read_table
+    p = tmp_path / "latin1.csv"
+    p.write_bytes("item_id,title\nk1,Tricot d\xe9butant\n".encode("latin-1"))
+    with pytest.raises(InputError, match="not valid UTF-8"):
+        read_table(p)
