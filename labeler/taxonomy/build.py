@@ -1,10 +1,10 @@
 """Learn a two-level taxonomy from item text.
 
 Steps: embed (cached by content hash) -> L2 normalise -> PCA -> L2 normalise -> HDBSCAN on a
-sample (at most ``fit_sample_cap`` items) -> fine topics (level 1) as cluster centroids -> every
-item placed at its nearest centroid, with confidence = cosine similarity, unplaced below
-``min_confidence`` -> coarse topics (level 0) by agglomerating fine centroids -> names by
-class-based TF-IDF -> ids matched to a previous taxonomy by item overlap.
+sample (at most ``fit_sample_cap`` items) -> fine topics (level 1) as the clusters' centroids in
+the embedding space -> every item placed at its nearest centroid, with confidence = cosine
+similarity, unplaced below ``min_confidence`` -> coarse topics (level 0) by agglomerating fine
+centroids -> names by class-based TF-IDF -> ids matched to a previous taxonomy by item overlap.
 
 Placing every item at its nearest centroid (HDBSCAN finds the topics, the centroids place the
 items) makes ``Taxonomy.assign`` on the build items reproduce the build exactly.
@@ -35,41 +35,41 @@ def embed_items(items: pd.DataFrame, cfg: dict, embedder, progress: bool = True)
                        progress=progress)
 
 
-def _reduce(vectors: np.ndarray, arrays: dict) -> np.ndarray:
-    z = (vectors - arrays["pca_mean"]) @ arrays["pca_components"].T
-    n = np.linalg.norm(z, axis=1, keepdims=True)
-    n[n == 0] = 1.0
-    return z / n
-
-
-def place(vectors: np.ndarray, arrays: dict) -> tuple[np.ndarray, np.ndarray]:
-    """Nearest fine centroid and its cosine similarity (clipped to [0, 1]) for each vector."""
-    z = _reduce(vectors, arrays)
-    sims = z @ arrays["centroids"].T
+def place(vectors: np.ndarray, centroids: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Nearest fine centroid and its cosine similarity (clipped to [0, 1]) for each unit vector."""
+    sims = vectors @ centroids.T
     best = np.argmax(sims, axis=1)
-    conf = np.clip(sims[np.arange(len(z)), best], 0.0, 1.0)
-    return best, conf
+    return best, np.clip(sims[np.arange(len(vectors)), best], 0.0, 1.0)
 
 
-def _fit_pca(x: np.ndarray, k: int, seed: int) -> dict:
+def _unit(x: np.ndarray) -> np.ndarray:
+    n = np.linalg.norm(x, axis=1, keepdims=True)
+    n[n == 0] = 1.0
+    return x / n
+
+
+def _reduce(x: np.ndarray, k: int, seed: int) -> np.ndarray:
+    """PCA to at most ``k`` dimensions, then unit length: the space HDBSCAN clusters in."""
     from sklearn.decomposition import PCA
     k = max(1, min(k, x.shape[0] - 1, x.shape[1]))
     pca = PCA(n_components=k, svd_solver="full" if x.shape[0] <= 5000 else "randomized", random_state=seed)
-    pca.fit(x)
-    comps = pca.components_.astype(np.float32)
-    # fix each component's sign so the artifact is identical across LAPACK builds
-    signs = np.sign(comps[np.arange(len(comps)), np.argmax(np.abs(comps), axis=1)])
-    return {"pca_mean": pca.mean_.astype(np.float32), "pca_components": comps * signs[:, None]}
+    return _unit(pca.fit_transform(x.astype(np.float64)))
 
 
-def _cluster(z: np.ndarray, cfg: TaxonomyConfig) -> np.ndarray:
+def _cluster(x: np.ndarray, cfg: TaxonomyConfig) -> np.ndarray:
+    """HDBSCAN labels (-1 = noise) of unit vectors ``x``, clustered after PCA.
+
+    Fewer items than ``min_cluster_size``, identical texts, or nothing dense enough give one
+    cluster holding everything (a documented degenerate result, not an error).
+    """
     import hdbscan
-    if len(z) < max(cfg.min_cluster_size, 2) or len(np.unique(np.round(z, 5), axis=0)) < 2:
-        return np.zeros(len(z), dtype=int)
+    if len(x) < max(cfg.min_cluster_size, 2) or len(np.unique(np.round(x, 5), axis=0)) < 2:
+        return np.zeros(len(x), dtype=int)
+    z = _reduce(x, cfg.pca_components, cfg.seed)
     model = hdbscan.HDBSCAN(min_cluster_size=cfg.min_cluster_size, min_samples=cfg.min_samples,
                             metric="euclidean", cluster_selection_method="eom", core_dist_n_jobs=1)
     labels = model.fit_predict(z.astype(np.float64))
-    if labels.max() < 0:  # nothing dense enough: one topic holds everything (documented)
+    if labels.max() < 0:
         return np.zeros(len(z), dtype=int)
     return labels
 
@@ -120,6 +120,7 @@ def build_taxonomy(items: pd.DataFrame, config: TaxonomyConfig | None = None, *,
     """
     cfg = config or TaxonomyConfig()
     items, intake = normalize_items(items, cfg.text_columns, source=source)
+    items = items.sort_values("item_id", kind="stable").reset_index(drop=True)  # input order never matters
     embedder = embedder or SentenceEmbedder(cfg.model, cfg.model_path, cfg.batch_size)
     cfgd = cfg.model_dump(mode="json")
     version = _input_version(items, cfg, embedder.name, previous)
@@ -131,14 +132,11 @@ def build_taxonomy(items: pd.DataFrame, config: TaxonomyConfig | None = None, *,
         rng.choice(usable, size=cfg.fit_sample_cap, replace=False))
     if len(fit_idx) == 0:
         fit_idx = np.arange(len(items))
-    arrays = _fit_pca(vectors[fit_idx], cfg.pca_components, cfg.seed)
-    z_fit = _reduce(vectors[fit_idx], arrays)
-    labels = _cluster(z_fit, cfg)
+    labels = _cluster(vectors[fit_idx], cfg)
     clusters = sorted(set(labels.tolist()) - {-1})
-    centroids = np.vstack([z_fit[labels == c].mean(axis=0) for c in clusters])
-    centroids /= np.maximum(np.linalg.norm(centroids, axis=1, keepdims=True), 1e-12)
-    arrays["centroids"] = centroids.astype(np.float32)
-    fine_idx, conf = place(vectors, arrays)
+    centroids = _unit(np.vstack([vectors[fit_idx][labels == c].mean(axis=0) for c in clusters]))
+    arrays = {"centroids": centroids.astype(np.float32)}
+    fine_idx, conf = place(vectors, arrays["centroids"])
     placed = (conf >= cfg.min_confidence) & ~empty
     coarse_of_fine = _coarse(arrays["centroids"], cfg)
 

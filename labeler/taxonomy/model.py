@@ -27,7 +27,7 @@ from ..tables import normalize_items
 log = logging.getLogger(__name__)
 
 FORMAT = "labeler-taxonomy/1"
-ARRAYS = ("pca_mean", "pca_components", "centroids")
+ARRAYS = ("centroids",)
 
 TOPICS_SCHEMA = pa.schema([("topic_id", pa.string()), ("level", pa.int32()), ("parent_id", pa.string()),
                            ("name", pa.string()), ("keywords", pa.list_(pa.string())),
@@ -210,7 +210,7 @@ class Taxonomy:
         cfg = self.manifest["config"]
         items, _ = normalize_items(items, text_columns=tuple(cfg["text_columns"]))
         vectors, _ = embed_items(items, cfg, embedder=embedder or self.embedder(), progress=progress)
-        fine, conf = place(vectors, self.arrays)
+        fine, conf = place(vectors, self.arrays["centroids"])
         rows = placement_rows(items["item_id"].to_numpy(), fine, conf, items_empty_text(items, cfg),
                               self.centroid_topics, self.parent_of(), cfg["min_confidence"])
         n_unplaced = int(len(items) - rows["item_id"].nunique())
@@ -235,13 +235,11 @@ class Taxonomy:
         tmp = dest.parent / f".{dest.name}.tmp-{uuid.uuid4().hex}"
         tmp.mkdir(parents=True)
         files = {}
-        pq.write_table(pa.Table.from_pandas(self.topics, schema=TOPICS_SCHEMA, preserve_index=False),
-                       tmp / "topics.parquet")
+        _write_parquet(self.topics, TOPICS_SCHEMA, tmp / "topics.parquet")
         schema = ITEM_TOPICS_SCHEMA
         if "valid_from" in self.item_topics.columns:
             schema = schema.append(pa.field("valid_from", pa.timestamp("us", tz="UTC")))
-        pq.write_table(pa.Table.from_pandas(self.item_topics[list(schema.names)], schema=schema,
-                                            preserve_index=False), tmp / "item_topics.parquet")
+        _write_parquet(self.item_topics, schema, tmp / "item_topics.parquet")
         for name in ARRAYS:
             if name in self.arrays:
                 np.save(tmp / f"{name}.npy", np.ascontiguousarray(self.arrays[name]), allow_pickle=False)
@@ -290,6 +288,12 @@ class Taxonomy:
         ct = root / "centroid_topics.json"
         centroid_topics = json.loads(ct.read_text()) if ct.exists() else []
         return cls(topics, item_topics, manifest, arrays, centroid_topics)
+
+
+def _write_parquet(df: pd.DataFrame, schema: pa.Schema, path: Path) -> None:
+    """Write without pandas metadata, so the bytes depend on the values only, not on dtypes."""
+    table = pa.Table.from_pandas(df[list(schema.names)], schema=schema, preserve_index=False)
+    pq.write_table(table.replace_schema_metadata(None), path)
 
 
 def items_empty_text(items: pd.DataFrame, cfg: dict) -> np.ndarray:

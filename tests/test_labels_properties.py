@@ -1,0 +1,89 @@
+"""Property tests (hypothesis) of the label rules on random small logs with dense ties and duplicates."""
+from __future__ import annotations
+
+import pandas as pd
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from labeler import LabelConfig, label_interactions
+from labelcases import T0, taxonomy
+
+TAX = taxonomy({"a": [("x", 1.0)], "b": [("y", 1.0)], "c": [("x", 0.9), ("z", 0.8)], "d": [("z", 1.0)]})
+SETTINGS = settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+
+events = st.lists(st.tuples(st.sampled_from(["u1", "u2"]), st.sampled_from(["a", "b", "c", "d", "q"]),
+                            st.integers(0, 6),  # few distinct times: dense ties
+                            st.sampled_from([-1.0, 0.0, 0.5, 1.0, 2.0]),
+                            st.sampled_from(["e1", "e2"])), min_size=1, max_size=25)
+
+
+def frame(evs) -> pd.DataFrame:
+    return pd.DataFrame([{"user_id": u, "item_id": i, "ts": T0 + pd.Timedelta(hours=h), "engagement": e,
+                          "event_id": eid} for u, i, h, e, eid in evs])
+
+
+KEY = ["user_id", "item_id", "ts", "event_id", "level"]
+
+
+@SETTINGS
+@given(events, st.randoms(use_true_random=False))
+def test_labels_do_not_depend_on_input_row_order(evs, rnd):
+    """Shuffling the input rows gives the same labels table."""
+    df = frame(evs)
+    shuffled = df.sample(frac=1.0, random_state=rnd.randint(0, 10_000)).reset_index(drop=True)
+    a = label_interactions(df, TAX)
+    b = label_interactions(shuffled, TAX)
+    pd.testing.assert_frame_equal(a, b)
+
+
+@SETTINGS
+@given(events)
+def test_renaming_topic_ids_changes_only_the_ids(evs):
+    """Renaming topics x, y, z changes the topic_id column and nothing else."""
+    renamed = taxonomy({"a": [("r1", 1.0)], "b": [("r2", 1.0)], "c": [("r1", 0.9), ("r3", 0.8)], "d": [("r3", 1.0)]})
+    a = label_interactions(frame(evs), TAX)
+    b = label_interactions(frame(evs), renamed)
+    back = b["topic_id"].map({"r1": "x", "r2": "y", "r3": "z"})
+    assert a["topic_id"].fillna("-").tolist() == back.fillna("-").tolist()
+    cols = [c for c in a.columns if c not in ("topic_id", "taxonomy_version", "labels_version")]
+    pd.testing.assert_frame_equal(a[cols], b[cols])
+
+
+@SETTINGS
+@given(events, events, st.sampled_from([LabelConfig(), LabelConfig(min_support=2, memory_days=0.2),
+                                        LabelConfig(multi_topic="any_new", warmup=2)]))
+def test_appending_later_interactions_never_changes_earlier_labels(first, later, cfg):
+    """Interactions after the end of a log leave the labels of that log unchanged."""
+    df = frame(first)
+    tail = frame(later)
+    tail["ts"] = tail["ts"] + pd.Timedelta(days=1)
+    a = label_interactions(df, TAX, cfg)
+    b = label_interactions(pd.concat([df, tail], ignore_index=True), TAX, cfg)
+    b = b[b["ts"] <= df["ts"].max()].reset_index(drop=True)
+    cols = [c for c in a.columns if c != "labels_version"]
+    pd.testing.assert_frame_equal(a[cols], b[cols])
+
+
+@SETTINGS
+@given(events)
+def test_first_visit_to_a_topic_is_new_then_in_profile(evs):
+    """min_support=1, no memory, single-topic items: first interaction in a topic after warmup is new, later in_profile."""
+    single = taxonomy({"a": [("x", 1.0)], "b": [("y", 1.0)], "d": [("z", 1.0)]})
+    out = label_interactions(frame(evs), single, LabelConfig(warmup=0))
+    placed = out[out["label"] != "unplaced"]
+    for (_, _), g in placed.groupby(["user_id", "topic_id"]):
+        first_ts = g["ts"].min()
+        assert (g.loc[g["ts"] == first_ts, "label"] == "new_interest").all()
+        assert (g.loc[g["ts"] > first_ts, "label"] == "in_profile").all()
+
+
+@SETTINGS
+@given(events, st.sampled_from([LabelConfig(), LabelConfig(boost_on="discovery", multiplier=5.0)]))
+def test_shaped_reward_is_engagement_unless_new_interest(evs, cfg):
+    """shaped_reward = engagement when the label is not new_interest, and never amplifies engagement <= 0."""
+    df = frame(evs).drop_duplicates(["user_id", "item_id", "ts", "event_id"])
+    out = label_interactions(df, TAX, cfg).merge(
+        df.rename(columns={"engagement": "eng_in"}), on=["user_id", "item_id", "ts", "event_id"])
+    other = out[out["label"] != "new_interest"]
+    assert (other["shaped_reward"] == other["eng_in"]).all()
+    assert (out.loc[out["eng_in"] <= 0, "shaped_reward"] == out.loc[out["eng_in"] <= 0, "eng_in"]).all()

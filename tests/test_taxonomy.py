@@ -1,0 +1,248 @@
+"""Taxonomy build, artifact, placement and stable ids (fast: the hashing embedder stands in for the model)."""
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from labeler import ArtifactError, InputError, Taxonomy, TaxonomyConfig, build_taxonomy
+
+WORDS = {"knit": "knitting yarn needles cable sweater wool purl stitch",
+         "bonsai": "bonsai juniper wire pruning akadama pot branch repot",
+         "bread": "sourdough starter levain dough loaf banneton crust bake",
+         "guitar": "guitar fingerstyle chords strings capo strumming fret pick"}
+
+
+def catalog(n_per: int = 40, seed: int = 0) -> pd.DataFrame:
+    rng = np.random.default_rng(seed)
+    rows = []
+    for theme, words in WORDS.items():
+        vocab = words.split()
+        for k in range(n_per):
+            title = " ".join(rng.choice(vocab, size=4, replace=False))
+            rows.append((f"{theme}{k:03d}", title, " ".join(rng.choice(vocab, size=5)), theme))
+    return pd.DataFrame(rows, columns=["item_id", "title", "description", "theme"])
+
+
+CFG = TaxonomyConfig(min_cluster_size=8, min_samples=3, pca_components=16)
+
+
+@pytest.fixture(scope="module")
+def built():
+    from labeler.embed import HashingEmbedder
+    items = catalog()
+    return items, build_taxonomy(items, CFG, embedder=HashingEmbedder(128), progress=False)
+
+
+def test_build_recovers_themes(built):
+    """Four word-distinct themes come out as topics that match them (AMI > 0.8 at level 1)."""
+    from sklearn.metrics import adjusted_mutual_info_score
+    items, tax = built
+    fine = tax.item_topics[tax.item_topics["level"] == 1].set_index("item_id")["topic_id"]
+    labels = items.set_index("item_id").join(fine)["topic_id"].fillna("(unplaced)")
+    assert adjusted_mutual_info_score(items["theme"], labels) > 0.8
+
+
+def test_two_levels_with_parents(built):
+    """Every level-1 topic has a level-0 parent, and an item's level-0 topic is its fine topic's parent."""
+    _, tax = built
+    fine = tax.topics[tax.topics["level"] == 1]
+    coarse_ids = set(tax.topics.loc[tax.topics["level"] == 0, "topic_id"])
+    assert fine["parent_id"].isin(coarse_ids).all()
+    it = tax.item_topics.pivot(index="item_id", columns="level", values="topic_id")
+    parent = tax.parent_of()
+    assert (it[1].map(parent) == it[0]).all()
+
+
+def test_topics_have_keywords_and_names(built):
+    """Each topic has class-based TF-IDF keywords and a short name made of them."""
+    _, tax = built
+    for row in tax.topics.itertuples():
+        assert len(row.keywords) > 0
+        assert row.name.split(" / ")[0] in row.keywords
+
+
+def test_save_load_roundtrip_identical_files(built, tmp_path):
+    """Saving twice gives byte-identical files; loading gives the same tables and version."""
+    _, tax = built
+    tax.save(tmp_path / "a")
+    Taxonomy.load(tmp_path / "a").save(tmp_path / "b")
+    for f in sorted((tmp_path / "a").iterdir()):
+        assert f.read_bytes() == (tmp_path / "b" / f.name).read_bytes(), f.name
+    again = Taxonomy.load(tmp_path / "a")
+    assert again.version == tax.version
+    pd.testing.assert_frame_equal(again.item_topics, tax.item_topics, check_dtype=False)
+
+
+def test_same_inputs_same_version_and_files(built, tmp_path):
+    """Rebuilding from the same items and config gives the same version and identical files."""
+    from labeler.embed import HashingEmbedder
+    items, tax = built
+    other = build_taxonomy(items.sample(frac=1.0, random_state=3), CFG, embedder=HashingEmbedder(128),
+                           progress=False)
+    assert other.version == tax.version
+    tax.save(tmp_path / "a")
+    other.save(tmp_path / "b")
+    for f in sorted((tmp_path / "a").iterdir()):
+        assert f.read_bytes() == (tmp_path / "b" / f.name).read_bytes(), f.name
+
+
+def test_artifact_has_no_pickles(built, tmp_path):
+    """The folder holds Parquet, .npy (loadable with allow_pickle=False) and JSON only."""
+    _, tax = built
+    tax.save(tmp_path / "t")
+    for f in (tmp_path / "t").iterdir():
+        assert f.suffix in (".parquet", ".npy", ".json"), f.name
+        if f.suffix == ".npy":
+            np.load(f, allow_pickle=False)
+
+
+def test_tampered_file_is_refused(built, tmp_path):
+    """A file changed after writing fails the checksum check on load, naming the file."""
+    _, tax = built
+    tax.save(tmp_path / "t")
+    arr = np.load(tmp_path / "t" / "centroids.npy")
+    np.save(tmp_path / "t" / "centroids.npy", arr * 1.01)
+    with pytest.raises(ArtifactError, match="checksum mismatch for 'centroids.npy'"):
+        Taxonomy.load(tmp_path / "t")
+
+
+def test_missing_manifest_is_a_clear_error(tmp_path):
+    """Loading a folder that is not a taxonomy says so and how to make one."""
+    with pytest.raises(ArtifactError, match="not a taxonomy folder.*labeler taxonomy build"):
+        Taxonomy.load(tmp_path)
+
+
+def test_assign_reproduces_the_build(built):
+    """assign() on the build items gives the same topics for at least 99% of them."""
+    items, tax = built
+    again = tax.assign(items)
+    a = tax.item_topics.set_index(["item_id", "level"])["topic_id"]
+    b = again.set_index(["item_id", "level"])["topic_id"]
+    joined = a.to_frame("a").join(b.to_frame("b"), how="outer")
+    assert (joined["a"] == joined["b"]).mean() >= 0.99
+
+
+def test_assign_new_items_with_confidence(built):
+    """New items are placed with a confidence in [0, 1]; off-vocabulary text is left unplaced."""
+    _, tax = built
+    new = pd.DataFrame({"item_id": ["n1", "n2"], "title": ["bonsai juniper wire pruning", "zzz qqq"]})
+    rows = tax.assign(new)
+    assert set(rows["item_id"]) == {"n1"}
+    assert rows["confidence"].between(0, 1).all()
+    assert tax.last_assign_stats == {"items": 2, "unplaced": 1}
+
+
+def test_loaded_taxonomy_assigns_like_the_original(built, tmp_path):
+    """A saved and loaded taxonomy places items exactly as the one in memory."""
+    items, tax = built
+    tax.save(tmp_path / "t")
+    pd.testing.assert_frame_equal(Taxonomy.load(tmp_path / "t").assign(items.head(20)), tax.assign(items.head(20)))
+
+
+def test_stable_ids_across_rebuild(built):
+    """Rebuilding with previous= keeps every topic id whose items continue, and first_version."""
+    from labeler.embed import HashingEmbedder
+    items, tax = built
+    more = pd.concat([items, catalog(n_per=10, seed=9).assign(item_id=lambda d: "x" + d["item_id"])])
+    new = build_taxonomy(more, CFG.model_copy(update={"seed": 1}), embedder=HashingEmbedder(128),
+                         previous=tax, progress=False)
+    assert new.version != tax.version
+    old_fine = set(tax.topics.loc[tax.topics["level"] == 1, "topic_id"])
+    new_fine = set(new.topics.loc[new.topics["level"] == 1, "topic_id"])
+    assert old_fine <= new_fine
+    fv = dict(zip(new.topics["topic_id"], new.topics["first_version"]))
+    assert all(fv[t] == tax.version for t in old_fine)
+
+
+def test_new_topic_gets_fresh_id_and_current_version(built):
+    """A topic that did not exist before gets an id above the old ones and first_version = new version."""
+    from labeler.embed import HashingEmbedder
+    from labeler.taxonomy.ids import id_number
+    items, tax = built
+    extra = pd.DataFrame({"item_id": [f"p{k}" for k in range(40)],
+                          "title": [" ".join(np.random.default_rng(k).choice(
+                              "pottery clay wheel kiln glaze trimming centering stoneware".split(), 4,
+                              replace=False)) for k in range(40)]})
+    new = build_taxonomy(pd.concat([items, extra]), CFG, embedder=HashingEmbedder(128), previous=tax,
+                         progress=False)
+    pottery = new.item_topics[(new.item_topics["item_id"] == "p0") & (new.item_topics["level"] == 1)]
+    tid = pottery["topic_id"].iloc[0]
+    assert id_number(tid) > max(id_number(t) for t in tax.topics["topic_id"])
+    assert new.topics.set_index("topic_id").loc[tid, "first_version"] == new.version
+
+
+def test_from_categories_multi_label_and_unplaced():
+    """Editorial categories: several per item split on '|', first listed is primary; none = unplaced."""
+    items = pd.DataFrame({"item_id": ["a", "b", "c"], "category": ["knit|bonsai", "bonsai", None]})
+    tax = Taxonomy.from_categories(items)
+    it = tax.item_topics
+    names = tax.names()
+    a = it[it["item_id"] == "a"]
+    assert [names[t] for t in a["topic_id"]] == ["knit", "bonsai"]
+    assert "c" not in set(it["item_id"])
+    assert tax.manifest["n_unplaced"] == 1
+
+
+def test_from_categories_two_levels():
+    """With parent_column the parents are level 0 and the categories level 1 with parent_id."""
+    items = pd.DataFrame({"item_id": ["a", "b"], "category": ["joinery", "turning"],
+                          "hobby": ["woodwork", "woodwork"]})
+    tax = Taxonomy.from_categories(items, parent_column="hobby")
+    assert tax.levels == [0, 1]
+    fine = tax.topics[tax.topics["level"] == 1]
+    parent = tax.topics.loc[tax.topics["level"] == 0, "topic_id"].iloc[0]
+    assert (fine["parent_id"] == parent).all()
+
+
+def test_from_categories_ids_stable_when_categories_added():
+    """Editorial topic ids depend on the name only, so adding a category keeps the others' ids."""
+    a = Taxonomy.from_categories(pd.DataFrame({"item_id": ["a"], "category": ["knit"]}))
+    b = Taxonomy.from_categories(pd.DataFrame({"item_id": ["a", "b"], "category": ["knit", "aaa"]}))
+    assert a.topics["topic_id"].iloc[0] in set(b.topics["topic_id"])
+
+
+def test_editorial_assign_maps_known_categories():
+    """assign() on an editorial taxonomy places items by their category; unknown categories stay unplaced."""
+    tax = Taxonomy.from_categories(pd.DataFrame({"item_id": ["a"], "category": ["knit"]}))
+    rows = tax.assign(pd.DataFrame({"item_id": ["n1", "n2"], "category": ["knit", "pottery"]}))
+    assert rows["item_id"].tolist() == ["n1"]
+
+
+@pytest.mark.parametrize("titles", [["same text"] * 30, ["tiny"] * 3])
+def test_degenerate_catalogs_give_one_topic(titles):
+    """All-identical texts, or fewer items than min_cluster_size, give one topic holding all (documented)."""
+    from labeler.embed import HashingEmbedder
+    items = pd.DataFrame({"item_id": [f"i{k}" for k in range(len(titles))], "title": titles})
+    tax = build_taxonomy(items, CFG, embedder=HashingEmbedder(64), progress=False)
+    assert (tax.topics.groupby("level").size() == 1).all()
+    assert tax.item_topics["item_id"].nunique() == len(items)
+
+
+def test_empty_text_items_are_unplaced_and_counted():
+    """Items with no text are never placed; the manifest counts them."""
+    from labeler.embed import HashingEmbedder
+    items = catalog(n_per=15)
+    items.loc[:2, ["title", "description"]] = ""
+    tax = build_taxonomy(items, CFG, embedder=HashingEmbedder(128), progress=False)
+    assert tax.manifest["n_empty_text"] == 3
+    assert not set(items["item_id"].iloc[:3]) & set(tax.item_topics["item_id"])
+
+
+def test_duplicate_item_ids_rejected():
+    """A catalog with a repeated item id is an input error naming item_id."""
+    items = pd.DataFrame({"item_id": ["a", "a"], "title": ["x", "y"]})
+    with pytest.raises(InputError, match="column 'item_id': 1 duplicate"):
+        build_taxonomy(items, CFG, progress=False)
+
+
+def test_manifest_records_counts_and_config(built, tmp_path):
+    """The manifest records config, model, counts and each file's checksum."""
+    _, tax = built
+    tax.save(tmp_path / "t")
+    m = json.loads((tmp_path / "t" / "manifest.json").read_text())
+    assert m["model"] == "hashing-128" and m["config"]["min_cluster_size"] == 8
+    assert set(m["files"]) >= {"topics.parquet", "item_topics.parquet", "centroids.npy"}
+    assert m["n_items"] == 160
