@@ -1,0 +1,107 @@
+"""The command line: help for every verb, exit codes, and the README's demo command."""
+from __future__ import annotations
+
+import json
+
+import pytest
+
+from labeler.cli import build_parser
+
+VERBS = [["demo"], ["taxonomy"], ["taxonomy", "build"], ["taxonomy", "assign"], ["label"]]
+
+
+def test_top_level_help_lists_every_verb(cli):
+    """`labeler --help` prints usage naming each verb."""
+    code, out, _ = cli("--help")
+    assert code == 0
+    for verb in ("demo", "taxonomy", "label"):
+        assert verb in out
+
+
+@pytest.mark.parametrize("verb", VERBS, ids=" ".join)
+def test_each_verb_has_help(cli, verb):
+    """Each verb's --help prints its usage and exits 0."""
+    code, out, _ = cli(*verb, "--help")
+    assert code == 0 and "usage: labeler " + " ".join(verb) in out
+
+
+def test_every_option_has_help_text():
+    """No option is left without a help string."""
+    parser = build_parser()
+    stack = [parser]
+    while stack:
+        p = stack.pop()
+        for action in p._actions:
+            if action.choices and isinstance(action.choices, dict):
+                stack.extend(action.choices.values())
+            elif action.option_strings and action.dest not in ("help", "version"):
+                assert action.help, f"{p.prog} {action.option_strings} has no help"
+
+
+def test_unknown_flag_is_a_usage_error(cli):
+    """A misspelled flag exits with 2."""
+    code, _, err = cli("label", "--taxnomy", "x")
+    assert code == 2 and "unrecognized arguments" in err or "required" in err
+
+
+def test_taxonomy_and_label_on_fixtures(cli, fixtures, tmp_path):
+    """Editorial taxonomy then labels on the fixtures: exit 0, outputs written, summary counts duplicates."""
+    code, out, err = cli("taxonomy", "build", "--items", fixtures / "items.csv", "--out", tmp_path / "tax",
+                         "--from-categories", "category", "-q")
+    assert code == 0, err
+    code, out, err = cli("label", "--taxonomy", tmp_path / "tax", "--interactions",
+                         fixtures / "interactions.csv", "--out", tmp_path / "out", "-q")
+    assert code == 0, err
+    summary = json.loads((tmp_path / "out" / "summary.json").read_text())
+    assert summary["input"]["duplicate_events_collapsed"] == 1
+    assert summary["input"]["interactions_on_items_without_topics"] == 1
+    assert (tmp_path / "out" / "footprints.parquet").exists()
+    assert sorted(p.name for p in (tmp_path / "out" / "labels").iterdir())[0] == "date=2026-03-02"
+    assert "new_interest rate by week" in out
+
+
+def test_label_with_event_types_from_config(cli, fixtures, tmp_path):
+    """labels.event_types from the config drops the other event types and reports the count."""
+    cli("taxonomy", "build", "--items", fixtures / "items.csv", "--out", tmp_path / "tax",
+        "--from-categories", "category", "-q")
+    cfg = tmp_path / "job.toml"
+    cfg.write_text('[labels]\nevent_types = ["play"]\n')
+    code, _, err = cli("label", "--taxonomy", tmp_path / "tax", "--interactions", fixtures / "interactions.csv",
+                       "--out", tmp_path / "out", "--config", cfg, "-q")
+    assert code == 0, err
+    summary = json.loads((tmp_path / "out" / "summary.json").read_text())
+    assert summary["input"]["dropped_event_type"] == 1
+
+
+def test_learned_taxonomy_build_and_assign(cli, fixtures, tmp_path):
+    """`taxonomy build --embedder hashing` then `taxonomy assign` write their outputs."""
+    code, out, err = cli("taxonomy", "build", "--items", fixtures / "items.csv", "--out", tmp_path / "tax",
+                         "--embedder", "hashing", "-q")
+    assert code == 0, err and "taxonomy" in out
+    code, out, err = cli("taxonomy", "assign", "--taxonomy", tmp_path / "tax", "--items", fixtures / "items.csv",
+                         "--out", tmp_path / "placed.csv", "-q")
+    assert code == 0, err
+    assert (tmp_path / "placed.csv").read_text().startswith("item_id,level,topic_id,confidence")
+
+
+def test_label_outputs_byte_identical_across_runs(cli, fixtures, tmp_path):
+    """Two runs on the same inputs write byte-identical label files."""
+    cli("taxonomy", "build", "--items", fixtures / "items.csv", "--out", tmp_path / "tax",
+        "--from-categories", "category", "-q")
+    for name in ("a", "b"):
+        assert cli("label", "--taxonomy", tmp_path / "tax", "--interactions", fixtures / "interactions.csv",
+                   "--out", tmp_path / name, "-q")[0] == 0
+    files = sorted(p.relative_to(tmp_path / "a") for p in (tmp_path / "a").rglob("*.parquet"))
+    assert files
+    for f in files:
+        assert (tmp_path / "a" / f).read_bytes() == (tmp_path / "b" / f).read_bytes(), f
+
+
+def test_demo_small_runs_every_stage(cli, tmp_path):
+    """`labeler demo --small --embedder hashing` exits 0 and writes data, taxonomy, labels and a summary."""
+    code, out, err = cli("demo", "--out", tmp_path / "d", "--small", "--embedder", "hashing", "-q")
+    assert code == 0, err
+    for p in ("data/items.parquet", "data/interactions.parquet", "data/truth_events.parquet",
+              "taxonomy/manifest.json", "labels/summary.json", "demo-summary.json"):
+        assert (tmp_path / "d" / p).exists(), p
+    assert "labelled new_interest at level 1" in out
