@@ -56,9 +56,13 @@ class TaxonomyConfig(_Strict):
     model_path: str | None = Field(None, description="Explicit model folder; wins over models_cache/.")
     embedding_cache: str | None = Field(None, description="Folder of the content-hash embedding cache.")
     batch_size: int = Field(64, ge=1)
-    pca_components: int = Field(32, ge=2)
-    min_cluster_size: int = Field(15, ge=2)
-    min_samples: int | None = Field(5, ge=1)
+    pca_components: int = Field(16, ge=2)
+    min_cluster_size: int = Field(10, ge=2)
+    min_samples: int | None = Field(2, ge=1)
+    cluster_selection: Literal["eom", "leaf"] = "eom"
+    merge_similarity: float | None = Field(None, gt=0.0, le=1.0,
+                                           description="merge fine topics whose centres are this similar")
+    refine_iterations: int = Field(100, ge=0, description="k-means steps moving HDBSCAN's centres; 0 = none")
     fit_sample_cap: int = Field(50_000, ge=100)
     min_confidence: float = Field(0.2, ge=0.0, le=1.0)
     coarse_topics: int | None = Field(None, ge=1, description="Level-0 topic count; None chooses it.")

@@ -67,35 +67,95 @@ def _cluster(x: np.ndarray, cfg: TaxonomyConfig) -> np.ndarray:
         return np.zeros(len(x), dtype=int)
     z = _reduce(x, cfg.pca_components, cfg.seed)
     model = hdbscan.HDBSCAN(min_cluster_size=cfg.min_cluster_size, min_samples=cfg.min_samples,
-                            metric="euclidean", cluster_selection_method="eom", core_dist_n_jobs=1)
+                            metric="euclidean", cluster_selection_method=cfg.cluster_selection, core_dist_n_jobs=1)
     labels = model.fit_predict(z.astype(np.float64))
     if labels.max() < 0:
         return np.zeros(len(z), dtype=int)
     return labels
 
 
+def _refine(x: np.ndarray, centroids: np.ndarray, iterations: int) -> np.ndarray:
+    """Spherical k-means steps from HDBSCAN's centres over the whole sample (noise included).
+
+    HDBSCAN decides how many topics there are and where their dense cores lie; these steps move
+    each centre to the mean of the items nearest to it, so diffuse regions are shared out too.
+    """
+    for _ in range(iterations if len(centroids) > 1 else 0):
+        nearest = np.argmax(x @ centroids.T, axis=1)
+        moved = centroids.copy()
+        for c in range(len(centroids)):
+            members = x[nearest == c]
+            if len(members):
+                moved[c] = members.mean(axis=0)
+        moved = _unit(moved)
+        if np.allclose(moved, centroids, atol=1e-7):
+            break
+        centroids = moved
+    return centroids.astype(np.float32)
+
+
+def _merge_close(x: np.ndarray, centroids: np.ndarray, similarity: float) -> np.ndarray:
+    """Merge topics whose centres have cosine similarity >= ``similarity`` (average linkage)."""
+    from scipy.cluster.hierarchy import fcluster, linkage
+    if len(centroids) < 2:
+        return centroids
+    groups = fcluster(linkage(centroids.astype(np.float64), method="average", metric="cosine"),
+                      t=1.0 - similarity, criterion="distance") - 1
+    sizes = np.bincount(np.argmax(x @ centroids.T, axis=1), minlength=len(centroids)).astype(np.float64)
+    merged = np.vstack([(centroids[groups == g] * np.maximum(sizes[groups == g], 1.0)[:, None]).sum(axis=0)
+                        for g in range(groups.max() + 1)])
+    return _unit(merged).astype(np.float32)
+
+
 def _coarse(centroids: np.ndarray, cfg: TaxonomyConfig) -> np.ndarray:
     """Group fine centroids into coarse topics with Ward linkage.
 
-    Without ``coarse_topics`` the count is where the dendrogram has its largest relative jump in
-    merge height, among counts from 2 to a third of the fine topics (a coarse level should be
-    clearly coarser than the fine one).
+    Without ``coarse_topics`` the count is the square root of the number of fine topics, a common
+    rule of thumb (criteria such as silhouette keep rising toward no merging at all, and the
+    largest dendrogram jump tends to pick two or three groups, too coarse to be useful).
     """
     from scipy.cluster.hierarchy import fcluster, linkage
     n = len(centroids)
     if n <= 2:
         return np.zeros(n, dtype=int)
+    k = cfg.coarse_topics if cfg.coarse_topics is not None else int(round(np.sqrt(n)))
+    k = max(1, min(k, n))
     tree = linkage(centroids.astype(np.float64), method="ward")
-    if cfg.coarse_topics is not None:
-        k = min(cfg.coarse_topics, n)
-    else:
-        heights = tree[:, 2]  # heights[j] merges n - j clusters into n - j - 1
-        k_max = max(2, n // 3)
-        # going from k clusters to k - 1 costs heights[n - k]; the jump over the previous merge
-        jumps = {k: heights[n - k] / max(heights[n - k - 1], 1e-12) for k in range(2, k_max + 1)}
-        k = max(jumps, key=lambda kk: (jumps[kk], -kk))
-    labels = fcluster(tree, t=k, criterion="maxclust") - 1
-    return labels.astype(int)
+    return (fcluster(tree, t=k, criterion="maxclust") - 1).astype(int)
+
+
+def _fit_centroids(x: np.ndarray, cfg: TaxonomyConfig) -> tuple[np.ndarray, int]:
+    """Fine-topic centres (HDBSCAN's clusters, refined, merged where too close) and the noise count."""
+    labels = _cluster(x, cfg)
+    clusters = sorted(set(labels.tolist()) - {-1})
+    centroids = _refine(x, _unit(np.vstack([x[labels == c].mean(axis=0) for c in clusters])),
+                        cfg.refine_iterations)
+    if cfg.merge_similarity is not None:
+        centroids = _refine(x, _merge_close(x, centroids, cfg.merge_similarity), cfg.refine_iterations)
+    return centroids, int((labels == -1).sum())
+
+
+def _stable_ids(fine_members: dict, coarse_members: dict, previous, cfg: TaxonomyConfig):
+    """Topic ids: a previous topic's id where its items continue, else a fresh one above all old ids.
+
+    Returns ({(level, key): topic_id}, {old topic_id: first_version}).
+    """
+    ids: dict[tuple[int, int], str] = {}
+    first_version: dict[str, str] = {}
+    next_id = 0
+    if previous is not None:
+        next_id = max([id_number(t) for t in previous.topics["topic_id"]] + [-1]) + 1
+        first_version = dict(zip(previous.topics["topic_id"], previous.topics["first_version"]))
+        for level, members in ((0, coarse_members), (1, fine_members)):
+            for key, tid in match_topics(members, members_by_topic(previous.item_topics, level),
+                                         cfg.id_match_min_jaccard).items():
+                ids[(level, key)] = tid
+    for level, members in ((0, coarse_members), (1, fine_members)):
+        for key in sorted(members, key=lambda k: (-len(members[k]), min(members[k], default=""))):
+            if (level, key) not in ids:
+                ids[(level, key)] = format_id(next_id)
+                next_id += 1
+    return ids, first_version
 
 
 def _input_version(items: pd.DataFrame, cfg: TaxonomyConfig, model: str, previous) -> str:
@@ -132,39 +192,24 @@ def build_taxonomy(items: pd.DataFrame, config: TaxonomyConfig | None = None, *,
         rng.choice(usable, size=cfg.fit_sample_cap, replace=False))
     if len(fit_idx) == 0:
         fit_idx = np.arange(len(items))
-    labels = _cluster(vectors[fit_idx], cfg)
-    clusters = sorted(set(labels.tolist()) - {-1})
-    centroids = _unit(np.vstack([vectors[fit_idx][labels == c].mean(axis=0) for c in clusters]))
-    arrays = {"centroids": centroids.astype(np.float32)}
-    fine_idx, conf = place(vectors, arrays["centroids"])
+    centroids, n_noise = _fit_centroids(vectors[fit_idx], cfg)
+    fine_idx, conf = place(vectors, centroids)
     placed = (conf >= cfg.min_confidence) & ~empty
-    coarse_of_fine = _coarse(arrays["centroids"], cfg)
-
-    # stable ids: match coarse then fine clusters to the previous taxonomy by item overlap
+    kept = np.unique(fine_idx[placed]) if placed.any() else np.arange(len(centroids))
+    if len(kept) < len(centroids):  # a centre nobody is placed at is no topic
+        centroids = centroids[kept]
+        fine_idx, conf = place(vectors, centroids)
+        placed = (conf >= cfg.min_confidence) & ~empty
+    n_fine = len(centroids)
+    coarse_of_fine = _coarse(centroids, cfg)
     item_ids = items["item_id"].to_numpy()
-    fine_members = {c: set(item_ids[placed & (fine_idx == c)]) for c in range(len(clusters))}
-    coarse_members = {g: set().union(*(fine_members[c] for c in range(len(clusters))
-                                       if coarse_of_fine[c] == g)) for g in set(coarse_of_fine.tolist())}
-    ids: dict[tuple[int, int], str] = {}
-    first_version: dict[str, str] = {}
-    next_id = 0
-    if previous is not None:
-        prev_ids = previous.topics["topic_id"].tolist()
-        next_id = max([id_number(t) for t in prev_ids] + [-1]) + 1
-        first_version = dict(zip(previous.topics["topic_id"], previous.topics["first_version"]))
-        for level, members in ((0, coarse_members), (1, fine_members)):
-            for key, tid in match_topics(members, members_by_topic(previous.item_topics, level),
-                                         cfg.id_match_min_jaccard).items():
-                ids[(level, key)] = tid
-    for level, members in ((0, coarse_members), (1, fine_members)):
-        order = sorted(members, key=lambda k: (-len(members[k]), min(members[k], default="")))
-        for key in order:
-            if (level, key) not in ids:
-                ids[(level, key)] = format_id(next_id)
-                next_id += 1
-    centroid_topics = [ids[(1, c)] for c in range(len(clusters))]
-
-    parent = {ids[(1, c)]: ids[(0, int(coarse_of_fine[c]))] for c in range(len(clusters))}
+    fine_members = {c: set(item_ids[placed & (fine_idx == c)]) for c in range(n_fine)}
+    coarse_members = {g: set().union(*(fine_members[c] for c in range(n_fine) if coarse_of_fine[c] == g))
+                      for g in sorted(set(coarse_of_fine.tolist()))}
+    ids, first_version = _stable_ids(fine_members, coarse_members, previous, cfg)
+    centroid_topics = [ids[(1, c)] for c in range(n_fine)]
+    parent = {ids[(1, c)]: ids[(0, int(coarse_of_fine[c]))] for c in range(n_fine)}
+    arrays = {"centroids": centroids.astype(np.float32)}
     rows = placement_rows(item_ids, fine_idx, conf, empty, centroid_topics, parent, cfg.min_confidence)
     texts = pd.Series(item_text(items, cfg.text_columns).to_numpy(), index=item_ids)
     topic_rows = []
@@ -183,7 +228,7 @@ def build_taxonomy(items: pd.DataFrame, config: TaxonomyConfig | None = None, *,
     manifest = {"format": FORMAT, "kind": "learned", "version": version, "tool_version": __version__,
                 "model": embedder.name, "config": cfgd, "n_items": int(len(items)),
                 "n_fit_sample": int(len(fit_idx)), "n_unplaced": n_unplaced,
-                "n_empty_text": int(empty.sum()), "n_noise_in_fit": int((labels == -1).sum()),
+                "n_empty_text": int(empty.sum()), "n_noise_in_fit": n_noise,
                 "topics_per_level": {str(l): int((topics["level"] == l).sum()) for l in (0, 1)},
                 "previous_version": previous.version if previous is not None else None,
                 "embedding_cache": {"hits": stats.hits, "misses": stats.misses}}

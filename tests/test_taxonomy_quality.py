@@ -1,0 +1,114 @@
+"""Taxonomy quality with the real packaged model, against outside data and baselines.
+
+Outside check: WordNet 3.0 noun synsets (Princeton University; Debian package ``wordnet-base``),
+lemma + gloss as item text, the lexicographer file (26 noun categories) as the editorial truth.
+Scores are scikit-learn's AMI and NMI. Defaults were tuned on sample seed 0 only; the assertions
+run on seeds 1, 2 and 3. The level judged is fixed here, before any score: level 1 (fine topics),
+because the coarse level is a grouping of fine topics with a fixed rule (square root of their
+count), while the fine level is what HDBSCAN finds without being told a count.
+"""
+from __future__ import annotations
+
+import functools
+
+import numpy as np
+import pandas as pd
+import pytest
+from sklearn.cluster import KMeans
+from sklearn.decomposition import TruncatedSVD
+from sklearn.feature_extraction.text import TfidfVectorizer
+from sklearn.metrics import adjusted_mutual_info_score, normalized_mutual_info_score
+
+from labeler import TaxonomyConfig, build_taxonomy
+
+pytestmark = [pytest.mark.model]
+LEVEL = 1
+PER_CATEGORY = 120
+
+
+@functools.lru_cache(maxsize=None)
+def wordnet_scores(seed: int) -> dict[str, float]:
+    """Build a taxonomy on a class-balanced WordNet sample and score it and two baselines."""
+    from external import cache_dir, wordnet_nouns
+    from labeler.embed import EmbeddingCache, SentenceEmbedder, embed_texts
+    wn = wordnet_nouns()
+    sample = wn.sample(frac=1.0, random_state=seed).groupby("lexfile").head(PER_CATEGORY)
+    sample = sample.assign(title=sample["lemma"] + ": " + sample["gloss"]).reset_index(drop=True)
+    truth, k = sample["lexfile"], sample["lexfile"].nunique()
+    emb = SentenceEmbedder()
+    cache = cache_dir() / "embeddings"
+    tax = build_taxonomy(sample[["item_id", "title"]], TaxonomyConfig(text_columns=("title",),
+                         embedding_cache=str(cache)), embedder=emb, progress=False)
+    placed = tax.item_topics[tax.item_topics["level"] == LEVEL].set_index("item_id")["topic_id"]
+    ours = sample["item_id"].map(placed).fillna("(unplaced)")  # unplaced items count as one group
+    x, _ = embed_texts(sample["title"].tolist(), emb, EmbeddingCache(cache, emb.name), progress=False)
+    km = KMeans(k, n_init=10, random_state=seed).fit_predict(x)
+    tfidf = TfidfVectorizer(stop_words="english", sublinear_tf=True).fit_transform(sample["title"])
+    svd = TruncatedSVD(100, random_state=seed).fit_transform(tfidf)
+    svd /= np.linalg.norm(svd, axis=1, keepdims=True) + 1e-12
+    tf_km = KMeans(k, n_init=10, random_state=seed).fit_predict(svd)
+    scores = {"items": len(sample), "topics": int(placed.nunique()),
+              "unplaced_share": float((ours == "(unplaced)").mean())}
+    for name, lab in (("taxonomy", ours), ("embeddings_kmeans", km), ("tfidf_svd_kmeans", tf_km)):
+        scores[f"{name}_ami"] = float(adjusted_mutual_info_score(truth, lab))
+        scores[f"{name}_nmi"] = float(normalized_mutual_info_score(truth, lab))
+    print(f"\nWordNet seed {seed}: " + ", ".join(f"{k}={v:.4f}" if isinstance(v, float) else f"{k}={v}"
+                                               for k, v in scores.items()))
+    return scores
+
+
+@pytest.mark.external
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_wordnet_taxonomy_beats_tfidf_baseline_with_few_unplaced(seed):
+    """On WordNet nouns the taxonomy beats TF-IDF+SVD+KMeans (told the category count) by AMI, <= 10% unplaced."""
+    s = wordnet_scores(seed)
+    assert s["taxonomy_ami"] > s["tfidf_svd_kmeans_ami"]
+    assert s["unplaced_share"] <= 0.10
+
+
+@pytest.mark.external
+@pytest.mark.parametrize("seed", [1, 2, 3])
+@pytest.mark.xfail(strict=False, reason="known shortfall (issue 3 open): measured AMI gaps to embeddings+KMeans "
+                                        "were 0.027, 0.015 and 0.029 on seeds 1, 2, 3")
+def test_wordnet_taxonomy_within_002_of_embeddings_kmeans(seed):
+    """Without the category count, the taxonomy's AMI is within 0.02 of KMeans told the count, on the same embeddings."""
+    s = wordnet_scores(seed)
+    assert s["taxonomy_ami"] >= s["embeddings_kmeans_ami"] - 0.02
+
+
+def test_demo_fine_topics_match_true_themes():
+    """On the demo scenario the fine level recovers the true themes: AMI within 0.08 of KMeans told the theme count."""
+    from labeler.demo import generate_scenario
+    from labeler.embed import EmbeddingCache, SentenceEmbedder, embed_texts
+    from labeler.tables import item_text
+    from external import cache_dir
+    s = generate_scenario()
+    cache = cache_dir() / "embeddings"
+    emb = SentenceEmbedder()
+    tax = build_taxonomy(s.items, TaxonomyConfig(embedding_cache=str(cache)), embedder=emb, progress=False)
+    truth = s.truth_items
+    regular = truth["kind"] != "off_topic"
+    placed = tax.item_topics[tax.item_topics["level"] == 1].set_index("item_id")["topic_id"]
+    ours = truth["item_id"].map(placed).fillna("(unplaced)")
+    x, _ = embed_texts(item_text(s.items, TaxonomyConfig().text_columns).tolist(), emb,
+                       EmbeddingCache(cache, emb.name), progress=False)
+    km = KMeans(truth.loc[regular, "theme"].nunique(), n_init=10, random_state=0).fit_predict(x)
+    ami = adjusted_mutual_info_score(truth.loc[regular, "theme"], ours[regular])
+    base = adjusted_mutual_info_score(truth.loc[regular, "theme"], km[regular.to_numpy()])
+    print(f"\ndemo: fine AMI {ami:.4f}, embeddings+KMeans (true count) {base:.4f}, "
+          f"{tax.manifest['topics_per_level']}")
+    assert ami >= base - 0.08
+    assert tax.manifest["n_unplaced"] / len(s.items) <= 0.05
+
+
+def test_assign_agrees_with_build_on_the_real_model():
+    """assign() with the real model reproduces the build's topics for >= 99% of items."""
+    from labeler.demo import generate_scenario
+    from external import cache_dir
+    items = generate_scenario(seed=3, n_items=800, n_users=10, weeks=1).items
+    tax = build_taxonomy(items, TaxonomyConfig(embedding_cache=str(cache_dir() / "embeddings")), progress=False)
+    again = tax.assign(items)
+    a = tax.item_topics.set_index(["item_id", "level"])["topic_id"]
+    b = again.set_index(["item_id", "level"])["topic_id"]
+    joined = a.to_frame("a").join(b.to_frame("b"), how="outer")
+    assert (joined["a"] == joined["b"]).mean() >= 0.99
