@@ -7,6 +7,7 @@ never has to fit in it. Other Parquet files are read into memory and validated l
 """
 from __future__ import annotations
 
+import hashlib
 import logging
 import os
 from pathlib import Path
@@ -40,6 +41,7 @@ def interactions_table(engine, data, input_config: InputConfig | None = None,
         source = source or str(path)
         lazy = _lazy_parquet(engine, path, cfg, source)
         if lazy is not None:
+            lazy[1].content_hash = files_hash(path)
             return lazy
         from .tables import read_table
         data = read_table(path)
@@ -50,9 +52,29 @@ def interactions_table(engine, data, input_config: InputConfig | None = None,
         raise InputError(f"expected a pandas DataFrame, an Arrow table or a Parquet path, got "
                          f"{type(data).__name__}.", source=source)
     df, intake = normalize_interactions(data, cfg, source)
+    intake.content_hash = frame_hash(df[list(_COLUMNS)])
     table = engine.table(pa.Table.from_pandas(df[list(_COLUMNS)], schema=_arrow_schema(),
                                               preserve_index=False), "interactions")
     return _with_ts_us(table), intake
+
+
+def frame_hash(df: pd.DataFrame) -> str:
+    """Order-independent hash of a normalised table: the sum of pandas' 64-bit row hashes."""
+    rows = pd.util.hash_pandas_object(df, index=False).to_numpy(dtype=np.uint64)
+    total = int(rows.sum(dtype=np.uint64))  # wraps modulo 2**64
+    return hashlib.sha256(f"frame\x00{len(df)}\x00{total}".encode()).hexdigest()
+
+
+def files_hash(path: Path) -> str:
+    """SHA-256 over the bytes of a file, or of every file under a folder in name order."""
+    h = hashlib.sha256()
+    files = [path] if path.is_file() else sorted(p for p in path.rglob("*") if p.is_file())
+    for f in files:
+        h.update(str(f.relative_to(path) if f != path else f.name).encode())
+        with open(f, "rb") as fh:
+            for chunk in iter(lambda: fh.read(1 << 22), b""):
+                h.update(chunk)
+    return h.hexdigest()
 
 
 def _arrow_schema() -> pa.Schema:
@@ -118,7 +140,11 @@ def _lazy_parquet(engine, path: Path, cfg: InputConfig, source: str):
 
 
 def item_topics_table(engine, tax, cfg: LabelConfig):
-    """The taxonomy's item_topics with pos (0 = primary), the no-boost flag and validity bounds."""
+    """The taxonomy's item_topics with pos (0 = primary), the no-boost flag and validity bounds.
+
+    Returns (table, levels table, whether validity bounds are used, whether every item has at most
+    one topic per level and period).
+    """
     it = tax.item_topics.copy()
     levels = cfg.levels if cfg.levels is not None else tuple(tax.levels)
     unknown = sorted(set(levels) - set(tax.levels))
@@ -151,4 +177,5 @@ def item_topics_table(engine, tax, cfg: LabelConfig):
     out = it[cols].reset_index(drop=True)
     out["level"] = out["level"].astype("int32")
     levels_t = engine.table(pd.DataFrame({"level": pd.Series(sorted(levels), dtype="int32")}), "levels")
-    return engine.table(out, "item_topics"), levels_t, has_valid
+    single_topic = bool((out["pos"] == 0).all())
+    return engine.table(out, "item_topics"), levels_t, has_valid, single_topic

@@ -6,6 +6,7 @@ CLI and the job get labels, footprints and the summary from one pass over the in
 from __future__ import annotations
 
 import dataclasses
+import functools
 import hashlib
 import json
 import logging
@@ -48,17 +49,37 @@ ROW_GROUP = 262_144
 
 @dataclasses.dataclass
 class LabelRun:
-    """Planned label and footprint expressions over one engine, with what intake reported."""
+    """Planned label and footprint expressions over one engine, with what intake reported.
+
+    Nothing runs until a result is asked for; intake counts are computed once, on first use.
+    """
 
     engine: Engine
     config: LabelConfig
     taxonomy_version: str
     labels_version: str
     labels: Any            # Ibis table: labels with ts_us, unsorted
-    footprints: Any        # Ibis table: footprints with known_since_us
-    as_of_us: int | None
+    base: Any              # Ibis table: one row per (interaction, level, item topic)
+    transitions: Any       # Ibis table: when topics become known / forgotten
+    ev: Any                # Ibis table: the validated input
     intake: Intake
-    counts: dict[str, int]
+    as_of: Any = None
+
+    @functools.cached_property
+    def counts(self) -> dict[str, int]:
+        return _intake_counts(self.engine, self.ev, self.base, self.config, self.intake)
+
+    @property
+    def as_of_us(self) -> int | None:
+        if self.as_of is None:
+            return self.counts["max_ts_us"]
+        ts = pd.Timestamp(self.as_of)
+        return int((ts.tz_convert("UTC") if ts.tz else ts.tz_localize("UTC")).value // 1000)
+
+    @functools.cached_property
+    def footprints(self):
+        """Ibis table: footprints with known_since_us, as of ``as_of_us``."""
+        return footprint_rows(self.base, self.transitions, self.config, self.as_of_us)
 
     # -- results as Arrow / pandas --------------------------------------------------------------
     def _labels_sorted(self):
@@ -97,6 +118,10 @@ class LabelRun:
             n=week.count(), new=(week.label == "new_interest").cast("int64").sum())
         wk = self.engine.to_pandas(wk).sort_values(["level", "week"])
         users = int(self.engine.to_pandas(t.aggregate(u=t.user_id.nunique()))["u"].iloc[0])
+        per = t.group_by(["user_id", "item_id", "ts_us", "event_id"]).aggregate(
+            placed=(t.label != "unplaced").cast("int64").max())
+        unplaced = per.filter(per.placed == 0)
+        no_topic = int(self.engine.to_pandas(unplaced.aggregate(n=unplaced.count()))["n"].iloc[0])
         levels = {}
         for level, g in by.groupby("level"):
             total = int(g["n"].sum())
@@ -113,7 +138,9 @@ class LabelRun:
                     for r in w.itertuples()]}
         return {"taxonomy_version": self.taxonomy_version, "labels_version": self.labels_version,
                 "tool_version": __version__, "users": users, "input": {
-                    "source": self.intake.source, "rows": self.intake.rows_in, **self.counts,
+                    "source": self.intake.source, "rows": self.intake.rows_in,
+                    **{k: v for k, v in self.counts.items() if k != "max_ts_us"},
+                    "interactions_on_items_without_topics": no_topic,
                     "notes": self.intake.notes},
                 "as_of": _iso_us(self.as_of_us), "config": json.loads(self.config.canonical_json()),
                 "levels": levels}
@@ -219,38 +246,27 @@ def plan_labels(interactions, taxonomy, config: LabelConfig | None = None, *,
     cfg = config or LabelConfig()
     eng = engine or make_engine()
     ev, intake = interactions_table(eng, interactions, input_config, source)
-    it, levels, has_valid = item_topics_table(eng, taxonomy, cfg)
-    input_hash = eng.content_hash(ev, ("user_id", "item_id", "ts_us", "engagement", "event_id",
-                                       "event_type"))
-    prepared = prepare(ev, cfg).cache()
-    counts = _intake_counts(eng, ev, prepared, it, cfg)
-    rows = with_support(topic_rows(prepared, it, levels, has_valid), cfg).cache()
-    transitions = known_transitions(rows, cfg).cache()
-    labels = label_rows(rows, known_topic_counts(rows, transitions), cfg)
-    if as_of is None:
-        as_of_us = counts.pop("_max_ts_us")
-    else:
-        counts.pop("_max_ts_us")
-        as_of_us = int(pd.Timestamp(as_of).tz_convert("UTC").value // 1000) if pd.Timestamp(as_of).tz \
-            else int(pd.Timestamp(as_of, tz="UTC").value // 1000)
-    footprints = footprint_rows(rows, transitions, cfg, as_of_us)
-    version = hashlib.sha256("\x00".join([taxonomy.version, cfg.canonical_json(), input_hash,
+    it, levels, has_valid, single_topic = item_topics_table(eng, taxonomy, cfg)
+    base = topic_rows(prepare(ev, cfg), it, levels, has_valid).cache()
+    transitions = known_transitions(base, cfg)
+    labels = label_rows(with_support(base, cfg), known_topic_counts(base, transitions), cfg, single_topic)
+    version = hashlib.sha256("\x00".join([taxonomy.version, cfg.canonical_json(), intake.content_hash,
                                           __version__]).encode()).hexdigest()
-    return LabelRun(eng, cfg, taxonomy.version, version, labels, footprints, as_of_us, intake, counts)
+    return LabelRun(eng, cfg, taxonomy.version, version, labels, base, transitions, ev, intake, as_of)
 
 
-def _intake_counts(eng, ev, prepared, it, cfg) -> dict[str, int]:
-    n_in = int(eng.to_pandas(ev.aggregate(n=ev.count()))["n"].iloc[0])
-    typed = ev.filter(ev.event_type.isin(list(cfg.event_types))) if cfg.event_types is not None else ev
-    n_typed = int(eng.to_pandas(typed.aggregate(n=typed.count()))["n"].iloc[0])
-    stats = eng.to_pandas(prepared.aggregate(n=prepared.count(), mx=prepared.ts_us.max()))
+def _intake_counts(eng, ev, rows, cfg, intake: Intake) -> dict[str, int]:
+    """What preparing the log set aside, from the topic rows (each interaction once per level at pos 0)."""
+    n_typed = intake.rows_in
+    if cfg.event_types is not None:
+        typed = ev.filter(ev.event_type.isin(list(cfg.event_types)))
+        n_typed = int(eng.to_pandas(typed.aggregate(n=typed.count()))["n"].iloc[0])
+    first_level = rows.level.min().as_scalar()
+    once = rows.filter((rows.level == first_level) & (rows.pos.isnull() | (rows.pos == 0)))
+    stats = eng.to_pandas(once.aggregate(n=once.count(), mx=once.ts_us.max()))
     n_out = int(stats["n"].iloc[0])
-    known_items = it.select("item_id").distinct()
-    unknown = prepared.anti_join(known_items, "item_id")
-    n_unknown = int(eng.to_pandas(unknown.aggregate(n=unknown.count()))["n"].iloc[0])
-    return {"dropped_event_type": n_in - n_typed, "duplicate_events_collapsed": n_typed - n_out,
-            "interactions_labelled": n_out, "interactions_on_items_without_topics": n_unknown,
-            "_max_ts_us": int(stats["mx"].iloc[0]) if n_out else None}
+    return {"dropped_event_type": intake.rows_in - n_typed, "duplicate_events_collapsed": n_typed - n_out,
+            "interactions_labelled": n_out, "max_ts_us": int(stats["mx"].iloc[0]) if n_out else None}
 
 
 def label_interactions(interactions, taxonomy, config: LabelConfig | None = None, **kwargs) -> pd.DataFrame:

@@ -34,13 +34,14 @@ def _i64(value) -> ir.Value:
 def prepare(ev: ir.Table, cfg: LabelConfig) -> ir.Table:
     """Filter event types, collapse duplicate events, and add ``history_len``.
 
-    ``ev`` has user_id, item_id, ts, ts_us, engagement, event_id, event_type.
+    ``ev`` has user_id, item_id, ts, ts_us, engagement, event_id, event_type. Duplicates (same
+    user, item, ts and event_id) become one row with the highest engagement and the smallest
+    event_type and arm.
     """
     if cfg.event_types is not None:
         ev = ev.filter(ev.event_type.isin(list(cfg.event_types)))
-    dup_rank = ibis.row_number().over(group_by=[ev[c] for c in INTERACTION_KEY],
-                                      order_by=[ibis.desc(ev.engagement), ev.event_type])
-    ev = ev.mutate(_dup=dup_rank).filter(lambda t: t._dup == 0).drop("_dup")
+    ev = ev.group_by(list(INTERACTION_KEY)).aggregate(
+        ts=ev.ts.min(), engagement=ev.engagement.max(), event_type=ev.event_type.min(), arm=ev.arm.min())
     return ev.mutate(history_len=ibis.rank().over(group_by=ev.user_id, order_by=ev.ts_us))
 
 
@@ -85,6 +86,9 @@ def known_transitions(rows: ir.Table, cfg: LabelConfig) -> ir.Table:
     """
     qual = rows.filter(qualifies(rows, cfg)).select("user_id", "level", "topic_id", "ts_us")
     keys = [qual.user_id, qual.level, qual.topic_id]
+    if cfg.memory_us is None and cfg.min_support == 1:
+        first = qual.group_by(keys).aggregate(p=qual.ts_us.min() + 1)
+        return first.select("user_id", "level", "topic_id", "p", d=_i64(1))
     if cfg.memory_us is None:
         nth = ibis.row_number().over(group_by=keys, order_by=qual.ts_us)
         kth = qual.mutate(_n=nth).filter(lambda t: t._n == cfg.min_support - 1)
@@ -111,10 +115,21 @@ def known_topic_counts(points: ir.Table, transitions: ir.Table) -> ir.Table:
     return tl.filter(tl.is_point).select("user_id", "level", ts_us=tl.p, known_topics=tl.known_topics)
 
 
-def label_rows(rows: ir.Table, counts: ir.Table, cfg: LabelConfig) -> ir.Table:
-    """Collapse topic rows to one row per (interaction, level) and apply the label rules."""
+def per_interaction(rows: ir.Table, single_topic: bool) -> ir.Table:
+    """One row per (interaction, level) with topic counts and the topics a label can name.
+
+    With ``single_topic`` (every item has at most one topic per level) this is a projection;
+    otherwise the item's topic rows are aggregated, "first" meaning lowest ``pos``.
+    """
     placed = rows.topic_id.notnull()
-    g = rows.group_by(["user_id", "item_id", "ts_us", "event_id", "level"]).aggregate(
+    if single_topic:
+        return rows.select(
+            "user_id", "item_id", "ts_us", "event_id", "level", "ts", "engagement", "history_len",
+            n_topics=placed.cast("int64"), n_known=(placed & rows.known).cast("int64"),
+            first_known=ibis.ifelse(rows.known, rows.topic_id, ibis.null("string")),
+            first_unknown=ibis.ifelse(rows.known, ibis.null("string"), rows.topic_id),
+            primary=rows.topic_id, blocked=(placed & rows.nb.fill_null(False)).cast("int64"))
+    return rows.group_by(["user_id", "item_id", "ts_us", "event_id", "level"]).aggregate(
         ts=rows.ts.max(), engagement=rows.engagement.max(), history_len=rows.history_len.max(),
         n_topics=placed.cast("int64").sum(),
         n_known=(placed & rows.known).cast("int64").sum(),
@@ -122,6 +137,11 @@ def label_rows(rows: ir.Table, counts: ir.Table, cfg: LabelConfig) -> ir.Table:
         first_unknown=rows.topic_id.argmin(rows.pos, where=placed & ~rows.known),
         primary=rows.topic_id.argmin(rows.pos, where=placed),
         blocked=(placed & rows.nb).cast("int64").max())
+
+
+def label_rows(rows: ir.Table, counts: ir.Table, cfg: LabelConfig, single_topic: bool = False) -> ir.Table:
+    """Collapse topic rows to one row per (interaction, level) and apply the label rules."""
+    g = per_interaction(rows, single_topic)
     j = g.left_join(counts, ["user_id", "level", "ts_us"])
     g = j.select(*g.columns, known_topics=j.known_topics.fill_null(0))
     in_profile = (g.n_known >= 1) if cfg.multi_topic == "all_new" else (g.n_known == g.n_topics)

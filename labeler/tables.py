@@ -46,6 +46,7 @@ class Intake:
     rows_out: int = 0
     notes: list[str] = dataclasses.field(default_factory=list)
     dropped: dict[str, int] = dataclasses.field(default_factory=dict)
+    content_hash: str = ""
 
     def note(self, text: str) -> None:
         self.notes.append(text)
