@@ -44,7 +44,7 @@ class InputConfig(_Strict):
         try:
             ZoneInfo(v)
         except (ZoneInfoNotFoundError, ValueError):
-            raise ValueError(f"unknown timezone {v!r}; use an IANA name such as 'UTC' or 'Europe/Lisbon'")
+            raise ValueError(f"unknown timezone {v!r}; use an IANA name such as 'UTC' or 'Europe/Lisbon'") from None
         return v
 
 
@@ -172,9 +172,9 @@ def load_job_config(path: str | Path | None = None, flags: dict[str, Any] | None
         try:
             data = tomllib.loads(p.read_text(encoding="utf-8"))
         except FileNotFoundError:
-            raise ConfigError(f"{p}: config file not found. Pass an existing TOML file with --config.")
+            raise ConfigError(f"{p}: config file not found. Pass an existing TOML file with --config.") from None
         except tomllib.TOMLDecodeError as exc:
-            raise ConfigError(f"{p}: not valid TOML ({exc}). Fix the syntax and run again.")
+            raise ConfigError(f"{p}: not valid TOML ({exc}). Fix the syntax and run again.") from None
     data = _merge(data, _env_overrides(os.environ if environ is None else environ))
     data = _merge(data, flags or {})
     return validate_config(JobConfig, data, source)

@@ -111,32 +111,63 @@ def _lazy_parquet(engine, path: Path, cfg: InputConfig, source: str):
         if c in names and pa.types.is_integer(schema.field(c).type):
             intake.note(f"column '{c}' holds integers; cast to strings")
     t = t.select(**cols)
-    checks = t.aggregate(
-        rows=t.count(),
-        null_user=(t.user_id.isnull() | (t.user_id.strip() == "")).sum(),
-        null_item=(t.item_id.isnull() | (t.item_id.strip() == "")).sum(),
-        null_ts=t.ts.isnull().sum(),
-        bad_eng=(t.engagement.isnull() | t.engagement.isnan() | t.engagement.isinf()).sum()).execute()
-    row = checks.iloc[0]
-    intake.rows_in = intake.rows_out = int(row["rows"])
+    files = [path] if path.is_file() else sorted(path.rglob("*.parquet"))
+    intake.rows_in = intake.rows_out = sum(pq.ParquetFile(f).metadata.num_rows for f in files)
     if intake.rows_in == 0:
         raise InputError("the table has no rows.", source=source, hint="Give a non-empty table.")
-    for col, key, what in (("user_id", "null_user", "null or empty id(s)"),
-                           ("item_id", "null_item", "null or empty id(s)"),
-                           ("ts", "null_ts", "null timestamp(s)"),
-                           ("engagement", "bad_eng", "null, NaN or infinite engagement value(s)")):
-        if int(row[key]):
-            bad = {"user_id": t.user_id.isnull() | (t.user_id.strip() == ""),
-                   "item_id": t.item_id.isnull() | (t.item_id.strip() == ""),
-                   "ts": t.ts.isnull(),
-                   "engagement": t.engagement.isnull() | t.engagement.isnan() | t.engagement.isinf()}[col]
-            sample = t.filter(bad).limit(5).execute()
-            raise InputError(f"{int(row[key])} {what}.", source=source, column=col,
-                             sample=[", ".join(f"{k}={v!r}" for k, v in r.items())
-                                     for r in sample[list(INTERACTIONS_REQUIRED)].to_dict("records")])
+    blank = lambda c: c.isnull() | (c.strip() == "")  # noqa: E731
+    rules = {"user_id": (blank(t.user_id), "null or empty id(s)"),
+             "item_id": (blank(t.item_id), "null or empty id(s)"),
+             "ts": (t.ts.isnull(), "null timestamp(s)"),
+             "engagement": (t.engagement.isnull() | t.engagement.isnan() | t.engagement.isinf(),
+                            "null, NaN or infinite engagement value(s)")}
+    proven = _clean_by_statistics(files, [c for c in rules if c in names])
+    to_scan = {c: r for c, r in rules.items() if c in names and c not in proven}
+    if to_scan:
+        counts = t.aggregate(**{c: expr.cast("int64").sum() for c, (expr, _) in to_scan.items()}).execute()
+        for col, (expr, what) in to_scan.items():
+            n_bad = int(counts[col].iloc[0] or 0)
+            if n_bad:
+                sample = t.filter(expr).limit(5).execute()
+                raise InputError(f"{n_bad} {what}.", source=source, column=col,
+                                 sample=[", ".join(f"{k}={v!r}" for k, v in r.items())
+                                         for r in sample[list(INTERACTIONS_REQUIRED)].to_dict("records")])
     if "engagement" not in names:
         intake.note("no 'engagement' column: every interaction counts as 1.0")
     return _with_ts_us(t), intake
+
+
+def _clean_by_statistics(files: list[Path], columns: list[str]) -> set[str]:
+    """Columns that Parquet row-group statistics alone prove free of bad values.
+
+    A column is proven when every row group records no nulls and, for string ids, a minimum that
+    is neither empty nor starts with white space (so no blank id can sort before it). Floating
+    columns are never proven: statistics do not record NaN.
+    """
+    proven = set(columns)
+    for f in files:
+        meta = pq.ParquetFile(f).metadata
+        index = {meta.schema.column(i).name: i for i in range(meta.num_columns)}
+        for rg in range(meta.num_row_groups):
+            group = meta.row_group(rg)
+            for col in list(proven):
+                if col not in index:
+                    proven.discard(col)
+                    continue
+                cmeta = group.column(index[col])
+                st = cmeta.statistics
+                ok = st is not None and st.has_null_count and st.null_count == 0
+                if ok and cmeta.physical_type in ("FLOAT", "DOUBLE"):
+                    ok = False
+                if ok and col in ("user_id", "item_id") and cmeta.physical_type == "BYTE_ARRAY":
+                    low = st.min if st.has_min_max else None
+                    low = low.decode("utf-8", "replace") if isinstance(low, bytes) else low
+                    ok = isinstance(low, str) and low != "" and not low[0].isspace()
+                if not ok:
+                    proven.discard(col)
+        if not proven:
+            break
+    return proven
 
 
 def item_topics_table(engine, tax, cfg: LabelConfig):

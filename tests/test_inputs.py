@@ -109,3 +109,30 @@ def test_non_utf8_csv_rejected(tmp_path):
     p.write_bytes("item_id,title\nk1,Tricot d\xe9butant\n".encode("latin-1"))
     with pytest.raises(InputError, match="not valid UTF-8"):
         read_table(p)
+
+
+PARQUET_CASES = {
+    "empty_user": (lambda d: d.assign(user_id=["u", ""]), "column 'user_id': 1 null or empty id"),
+    "blank_user": (lambda d: d.assign(user_id=["u", "  "]), "column 'user_id': 1 null or empty id"),
+    "null_item": (lambda d: d.assign(item_id=["a", None]), "column 'item_id': 1 null or empty id"),
+    "nan_engagement": (lambda d: d.assign(engagement=[1.0, float("nan")]), "column 'engagement': 1 null, NaN"),
+    "inf_engagement": (lambda d: d.assign(engagement=[1.0, float("inf")]), "column 'engagement': 1 null, NaN"),
+}
+
+
+@pytest.mark.parametrize("name", list(PARQUET_CASES))
+def test_lazy_parquet_path_checks_the_same_contract(tmp_path, name):
+    """A Parquet file read lazily (native types) is checked like an in-memory table, statistics or not."""
+    from labelcases import taxonomy
+    from labeler import label_interactions
+    tax = taxonomy({"a": [("x", 1.0)]})
+    good = pd.DataFrame({"user_id": ["u", "v"], "item_id": ["a", "a"], "engagement": [1.0, 2.0],
+                         "ts": pd.to_datetime(["2026-03-02T00:00:00Z"] * 2).astype("datetime64[us, UTC]")})
+    change, message = PARQUET_CASES[name]
+    for stats in (True, False):
+        p = tmp_path / f"{name}-{stats}.parquet"
+        change(good).to_parquet(p, write_statistics=stats)
+        with pytest.raises(InputError, match=re.escape(message)):
+            label_interactions(p, tax)
+    good.to_parquet(tmp_path / "good.parquet")
+    assert len(label_interactions(tmp_path / "good.parquet", tax)) == 2

@@ -12,7 +12,6 @@ from __future__ import annotations
 import functools
 
 import numpy as np
-import pandas as pd
 import pytest
 from sklearn.cluster import KMeans
 from sklearn.decomposition import TruncatedSVD

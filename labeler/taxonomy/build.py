@@ -12,7 +12,6 @@ items) makes ``Taxonomy.assign`` on the build items reproduce the build exactly.
 from __future__ import annotations
 
 import logging
-from pathlib import Path
 
 import numpy as np
 import pandas as pd

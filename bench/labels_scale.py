@@ -1,0 +1,55 @@
+"""Benchmark: `labeler label` from Parquet at growing sizes, streaming its outputs to disk.
+
+For each size (default 1M, 10M, 100M interactions) it writes a synthetic log (as in
+labels_vs_sql.py, users scaled with the size), runs the command in a child process with a
+bounded DuckDB memory limit, and reports wall time, the time ratio to the smallest size, and the
+child's peak RSS (the whole process tree: the command starts no further processes).
+
+    .venv/bin/python bench/labels_scale.py [--sizes 1000000 10000000 100000000] [--memory-limit 2GB]
+"""
+from __future__ import annotations
+
+import argparse
+import resource
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from labels_vs_sql import synthesize  # noqa: E402
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--sizes", type=int, nargs="+", default=[1_000_000, 10_000_000, 100_000_000])
+    ap.add_argument("--memory-limit", default="2GB")
+    ap.add_argument("--workdir", default=None, help="where the data goes (needs ~25 bytes per row)")
+    args = ap.parse_args()
+    root = Path(args.workdir or tempfile.mkdtemp(prefix="labeler-scale-"))
+    exe = Path(sys.executable).parent / "labeler"
+    base = None
+    for n in args.sizes:
+        d = root / f"n{n}"
+        d.mkdir(parents=True, exist_ok=True)
+        tax = synthesize(d / "interactions.parquet", n, max(20_000, n // 50))
+        tax.save(d / "tax")
+        (d / "job.toml").write_text(f'[engine]\nmemory_limit = "{args.memory_limit}"\ntemp_dir = "{d / "spill"}"\n')
+        before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+        t0 = time.perf_counter()
+        subprocess.run([str(exe), "label", "--taxonomy", str(d / "tax"), "--interactions",
+                        str(d / "interactions.parquet"), "--out", str(d / "out"), "--config", str(d / "job.toml"),
+                        "-q"], check=True, stdout=subprocess.DEVNULL)
+        secs = time.perf_counter() - t0
+        peak = max(before, resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss) / 2**20
+        base = base or secs
+        print(f"{n:>12,} interactions: {secs:7.1f}s (x{secs / base:.1f} the {args.sizes[0]:,} run), "
+              f"peak RSS of the child {peak:.2f} GiB (memory_limit {args.memory_limit})", flush=True)
+        shutil.rmtree(d, ignore_errors=True)
+    shutil.rmtree(root, ignore_errors=True)
+
+
+if __name__ == "__main__":
+    main()
