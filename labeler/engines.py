@@ -18,7 +18,7 @@ import pandas as pd
 import pyarrow as pa
 
 from .config import EngineConfig
-from .errors import ConfigError
+from .errors import ConfigError, EngineError
 
 log = logging.getLogger(__name__)
 
@@ -100,6 +100,21 @@ class DuckDBEngine(Engine):
         self.con.drop_view(view)
         digest = hashlib.sha256(f"{extra}\x00{n}\x00{hi or 0}\x00{lo or 0}".encode()).hexdigest()
         return digest
+
+
+def engine_error(exc: BaseException) -> EngineError | None:
+    """A clear EngineError for an engine's own failure, or None if ``exc`` is not one."""
+    import duckdb
+    if isinstance(exc, duckdb.OutOfMemoryException):
+        return EngineError(f"DuckDB ran out of memory ({str(exc).splitlines()[0]}). Raise "
+                           "engine.memory_limit, set engine.threads = 1, or point engine.temp_dir at a "
+                           "disk with more free space.")
+    if isinstance(exc, duckdb.IOException):
+        return EngineError(f"DuckDB could not read or write a file ({str(exc).splitlines()[0]}). Check the "
+                           "paths, permissions and free disk space (engine.temp_dir).")
+    if isinstance(exc, duckdb.Error):
+        return EngineError(f"DuckDB failed: {str(exc).splitlines()[0]}")
+    return None
 
 
 def make_engine(config: EngineConfig | str | None = None) -> Engine:

@@ -51,6 +51,12 @@ class RejectedError(LabelerError):
     exit_code = 1
 
 
+class EngineError(LabelerError):
+    """The engine failed while running (for example it ran out of memory)."""
+
+    exit_code = 1
+
+
 class LockedError(LabelerError):
     """Another run holds the lock."""
 

@@ -81,6 +81,17 @@ class LabelRun:
         """Ibis table: footprints with known_since_us, as of ``as_of_us``."""
         return footprint_rows(self.base, self.transitions, self.config, self.as_of_us)
 
+    def materialize(self) -> "LabelRun":
+        """Compute the labels once into an engine table (which spills to disk) for several reads.
+
+        Sorting, summarising and hashing then read that table: the window stages are done and
+        have released their memory before a sort starts.
+        """
+        if not getattr(self, "_materialized", False):
+            self.labels = self.labels.cache()
+            self._materialized = True
+        return self
+
     # -- results as Arrow / pandas --------------------------------------------------------------
     def _labels_sorted(self):
         t = self.labels
@@ -150,6 +161,7 @@ class LabelRun:
         """Write labels (Parquet partitioned by date), footprints and summary.json atomically."""
         out = Path(out_dir)
         out.mkdir(parents=True, exist_ok=True)
+        self.materialize()
         tmp = out / f".tmp-{uuid.uuid4().hex}"
         tmp.mkdir()
         n = _write_partitioned(self, tmp / "labels")

@@ -44,6 +44,13 @@ def main(argv: list[str] | None = None) -> int:
     except LabelerError as exc:
         print(f"labeler {args.verb}: error: {exc}", file=sys.stderr)
         return exc.exit_code
+    except Exception as exc:  # an engine's own failure becomes a clear message; anything else is a bug
+        from ..engines import engine_error
+        err = engine_error(exc)
+        if err is None:
+            raise
+        print(f"labeler {args.verb}: error: {err}", file=sys.stderr)
+        return err.exit_code
     except KeyboardInterrupt:
         print("labeler: interrupted", file=sys.stderr)
         return 130
