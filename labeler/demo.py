@@ -226,8 +226,18 @@ def run_demo(out_dir, seed: int = 7, embedder=None, progress: bool = True, small
     ev = scenario.truth_events[scenario.truth_events["ts"] >= burn_in]
     hit = ev.merge(fine[["event_id", "label"]], on="event_id", how="left")
     recall = float((hit["label"] == "new_interest").mean()) if len(hit) else 0.0
+    from .store import open_store, publish_store
+    snapshot = publish_store(out / "store", run, tax, cfg)
+    store = open_store(out / "store")
+    busiest = scenario.interactions["user_id"].value_counts().index[0]
+    fp = store.footprint(busiest, level=1)
+    fine_items = tax.item_topics[tax.item_topics["level"] == 1].drop_duplicates("topic_id")
+    candidates = fine_items["item_id"].head(5).tolist()  # one item from each of five fine topics
+    lookup = {"user_id": busiest, "known_fine_topics": [t.name for t in fp.known][:5],
+              "candidates": {c.item_id: c.label for c in store.classify(busiest, candidates, level=1)}}
     summary = {
         "seed": seed, "data": paths,
+        "store": {"dir": str(out / "store"), "snapshot": snapshot, "example_lookup": lookup},
         "items": int(len(scenario.items)), "interactions": int(len(scenario.interactions)),
         "users": int(scenario.interactions["user_id"].nunique()),
         "validation_notes": item_intake.notes + inter_intake.notes,

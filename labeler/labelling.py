@@ -42,7 +42,8 @@ FOOTPRINTS_SCHEMA = pa.schema([
     ("user_id", pa.string()), ("level", pa.int32()), ("topic_id", pa.string()),
     ("first_ts", pa.timestamp("us", tz="UTC")), ("last_ts", pa.timestamp("us", tz="UTC")),
     ("interactions", pa.int64()), ("engaged_interactions", pa.int64()), ("known", pa.bool_()),
-    ("known_since", pa.timestamp("us", tz="UTC"))])
+    ("known_since", pa.timestamp("us", tz="UTC")), ("history_len", pa.int64()),
+    ("recent_us", pa.list_(pa.int64()))])
 SORT_KEYS = ("user_id", "ts_us", "event_id", "item_id", "level")
 ROW_GROUP = 262_144
 
@@ -108,6 +109,14 @@ class LabelRun:
         t = self.footprints
         t = t.order_by([t.user_id, t.level, t.topic_id])
         return _finish_footprints(self.engine.to_arrow(t))
+
+    def history_frame(self) -> pd.DataFrame:
+        """user_id, history_len: each user's interactions up to ``as_of_us`` (unplaced ones included)."""
+        rows = self.base
+        first_level = rows.level.min().as_scalar()
+        once = rows.filter((rows.level == first_level) & (rows.pos.isnull() | (rows.pos == 0))
+                           & (rows.ts_us <= self.as_of_us))
+        return self.engine.to_pandas(once.group_by("user_id").aggregate(history_len=once.count()))
 
     def footprints_frame(self) -> pd.DataFrame:
         return self.footprints_arrow().to_pandas()
@@ -207,7 +216,7 @@ def _finish_labels(t: pa.Table, tax_version: str, labels_version: str) -> pa.Tab
 def _finish_footprints(t: pa.Table) -> pa.Table:
     since = pc.cast(t.column("known_since_us"), pa.timestamp("us", tz="UTC"))
     t = t.drop_columns(["known_since_us"]).append_column("known_since", since)
-    return t.select(list(FOOTPRINTS_COLUMNS)).cast(FOOTPRINTS_SCHEMA)
+    return t.select([*FOOTPRINTS_COLUMNS, "history_len", "recent_us"]).cast(FOOTPRINTS_SCHEMA)
 
 
 def _write_partitioned(run: LabelRun, root: Path) -> int:

@@ -171,6 +171,9 @@ def footprint_rows(rows: ir.Table, transitions: ir.Table, cfg: LabelConfig, as_o
     """The footprints table as seen by an interaction just after ``as_of_us``.
 
     One row per (user, level, topic) touched by a qualifying interaction at or before ``as_of_us``.
+    Beyond the contract's columns it carries what a lookup needs to apply the rules later:
+    ``history_len`` (the user's interactions up to ``as_of_us``, unplaced ones included) and
+    ``recent_us`` (the last ``min_support`` qualifying times, in microseconds).
     """
     end = as_of_us + 1
     qual = rows.filter(qualifies(rows, cfg) & (rows.ts_us <= as_of_us))
@@ -181,11 +184,24 @@ def footprint_rows(rows: ir.Table, transitions: ir.Table, cfg: LabelConfig, as_o
         _support=in_window.cast("int64").sum())
     tr = transitions.filter((transitions.p <= end) & (transitions.d > 0))
     since = tr.group_by(["user_id", "level", "topic_id"]).aggregate(_since_us=tr.p.max() - 1)
+    keys = [qual.user_id, qual.level, qual.topic_id]
+    latest = qual.mutate(_n=ibis.row_number().over(group_by=keys, order_by=ibis.desc(qual.ts_us)))
+    latest = latest.filter(latest._n < cfg.min_support)
+    recent = latest.group_by(["user_id", "level", "topic_id"]).aggregate(recent_us=latest.ts_us.collect().sort())
+    first_level = rows.level.min().as_scalar()
+    once = rows.filter((rows.level == first_level) & (rows.pos.isnull() | (rows.pos == 0))
+                       & (rows.ts_us <= as_of_us))
+    history = once.group_by("user_id").aggregate(history_len=once.count())
     j = agg.left_join(since, ["user_id", "level", "topic_id"])
     out = j.select(*agg.columns, _since_us=j._since_us)
+    j = out.left_join(recent, ["user_id", "level", "topic_id"])
+    out = j.select(*out.columns, recent_us=j.recent_us)
+    j = out.left_join(history, "user_id")
+    out = j.select(*out.columns, history_len=j.history_len)
     known = out._support >= cfg.min_support
     return out.select("user_id", "level", "topic_id", "first_ts", "last_ts",
                       out.interactions.cast("int64").name("interactions"),
                       out.engaged_interactions.cast("int64").name("engaged_interactions"),
                       known.name("known"), ibis.ifelse(known, out._since_us, ibis.null("int64"))
-                      .name("known_since_us"))
+                      .name("known_since_us"), out.history_len.cast("int64").name("history_len"),
+                      "recent_us")

@@ -10,9 +10,9 @@ import logging
 import sys
 
 from ..errors import LabelerError
-from . import _demo, _label, _taxonomy
+from . import _demo, _label, _store, _taxonomy
 
-VERBS = (_demo, _taxonomy, _label)
+VERBS = (_demo, _taxonomy, _label, _store)
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -34,5 +34,10 @@ def run(args) -> int:
     print(f"true new-interest events after the burn-in ({lab['label_from'][:10]}): "
           f"{lab['true_new_interest_events_after_burn_in']}, labelled new_interest at level 1: "
           f"{100 * lab['share_labelled_new_interest_level1']:.1f}%")
+    st = s["store"]
+    ex = st["example_lookup"]
+    print(f"store snapshot {st['snapshot']} -> {st['dir']}; e.g. `labeler lookup --store {st['dir']} "
+          f"{ex['user_id']} --item {next(iter(ex['candidates']))}`: "
+          + ", ".join(f"{i} {lab}" for i, lab in ex["candidates"].items()))
     print(f"outputs: {lab['dir']}/ and {args.out}/demo-summary.json")
     return 0

@@ -13,6 +13,7 @@ def register(sub) -> None:
     p.add_argument("--interactions", required=True, help="interactions (Parquet file or folder, or CSV)")
     p.add_argument("--out", required=True, help="output folder: labels/, footprints.parquet, summary.json")
     p.add_argument("--engine", choices=["duckdb", "spark"], help="where the label rules run (default duckdb)")
+    p.add_argument("--store", help="also publish a lookup-store snapshot to this folder")
     add_input(p)
     add_common(p)
     p.set_defaults(run=run)
@@ -25,6 +26,10 @@ def run(args) -> int:
                          engine=make_engine(cfg.engine))
     summary = result.write(args.out)
     print_summary(summary, args.out)
+    if args.store:
+        from ..store import publish_store
+        name = publish_store(args.store, result, tax, cfg.labels)
+        print(f"  store: published snapshot {name} to {args.store}")
     return 0
 
 
