@@ -152,13 +152,14 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
 
 
 def _shard_digest(fp: pd.DataFrame, users: pd.DataFrame) -> str:
-    h = hashlib.sha256()
-    cols = ["user_id", "level", "topic_id", "interactions", "engaged_interactions", "known", "first_ts",
-            "last_ts", "known_since", "recent_us"]
-    h.update(fp.sort_values(["user_id", "level", "topic_id"])[[c for c in cols if c in fp.columns]]
-             .to_csv(index=False).encode())
-    h.update(users.sort_values("user_id")[["user_id", "history_len"]].to_csv(index=False).encode())
-    return h.hexdigest()
+    """Order-independent content hash of one shard's rows (sum of pandas' 64-bit row hashes)."""
+    cols = [c for c in ("user_id", "level", "topic_id", "interactions", "engaged_interactions", "known",
+                        "first_ts", "last_ts", "known_since") if c in fp.columns]
+    parts = [fp[cols], fp["recent_us"].map(lambda v: ",".join(map(str, sorted(v))) if v is not None else "")]
+    rows = pd.util.hash_pandas_object(pd.concat(parts, axis=1), index=False).to_numpy(np.uint64)
+    urows = pd.util.hash_pandas_object(users[["user_id", "history_len"]], index=False).to_numpy(np.uint64)
+    total = (int(rows.sum(dtype=np.uint64)), int(urows.sum(dtype=np.uint64)), len(rows), len(urows))
+    return hashlib.sha256(repr(total).encode()).hexdigest()
 
 
 def _write_shard(path: Path, fp: pd.DataFrame, users: pd.DataFrame) -> None:
@@ -358,66 +359,98 @@ class Store:
                                   _ts(r[7])) for r in sorted(rows, key=lambda r: (r[0], -r[2], r[1])))
         return Footprint(str(user_id), history, topics, self.watermark, self.manifest["taxonomy_version"], self.name)
 
-    def _item_topics(self, item_ids: list[str], at_us: int) -> dict[tuple[str, int], list[str]]:
-        out: dict[tuple[str, int], list[str]] = {}
-        con = self._con("items.sqlite")
-        for k in range(0, len(item_ids), 500):
-            chunk = item_ids[k:k + 500]
-            q = ("SELECT item_id, level, valid_from_us, pos, topic_id FROM item_topics WHERE valid_from_us <= ? "
-                 f"AND item_id IN ({','.join('?' * len(chunk))}) ORDER BY item_id, level, valid_from_us, pos")
-            best: dict[tuple[str, int], int] = {}
-            rows = con.execute(q, [at_us, *chunk]).fetchall()
-            for item, level, vf, _, _ in rows:
-                best[(item, level)] = max(best.get((item, level), NEVER), vf)
-            for item, level, vf, _, topic in rows:
-                if vf == best[(item, level)]:
-                    out.setdefault((item, level), []).append(topic)
-        return out
+    def _catalog(self) -> tuple[dict, dict]:
+        """Item topics and topic names of the snapshot, loaded once per snapshot and reader.
+
+        {item_id: {level: [(valid_from_us, (topic_id, ...)), ...]}} (validity ascending, topics by
+        priority) and {topic_id: name}. Item topics are small next to per-user footprints, so each
+        reader keeps them in memory.
+        """
+        with self._lock:
+            cached = getattr(self, "_catalog_cache", None)
+            if cached is not None and cached[0] == self.name:
+                return cached[1], cached[2]
+            con = sqlite3.connect(f"file:{self._folder / 'items.sqlite'}?mode=ro&immutable=1", uri=True)
+            items: dict = {}
+            for item, level, vf, topic in con.execute(
+                    "SELECT item_id, level, valid_from_us, topic_id FROM item_topics "
+                    "ORDER BY item_id, level, valid_from_us, pos"):
+                periods = items.setdefault(item, {}).setdefault(level, [])
+                if periods and periods[-1][0] == vf:
+                    periods[-1] = (vf, periods[-1][1] + (topic,))
+                else:
+                    periods.append((vf, (topic,)))
+            names = dict(con.execute("SELECT topic_id, name FROM topics").fetchall())
+            levels = sorted(r[0] for r in con.execute("SELECT DISTINCT level FROM topics"))
+            con.close()
+            self._catalog_cache = (self.name, items, names)
+            self._catalog_levels = levels
+            return items, names
+
+    @staticmethod
+    def _topics_at(periods, at_us: int) -> tuple[str, ...]:
+        for vf, topics in reversed(periods or ()):
+            if vf <= at_us:
+                return topics
+        return ()
 
     def classify(self, user_id: str, item_ids: Iterable[str], level: int | None = None, at=None) -> list[Classification]:
         """Per item and level, the label it would get if the user met it at ``at`` (default: just
         after the watermark), by the same rules as :func:`labeler.label_interactions`."""
-        frame = self.classify_many(pd.DataFrame({"user_id": str(user_id), "item_id": [str(i) for i in item_ids]}),
-                                   level=level, at=at)
-        return [Classification(r.item_id, int(r.level), r.label, r.topic_id, r.topic_name)
-                for r in frame.itertuples(index=False)]
+        at_us = self._at(at)
+        items, names = self._catalog()
+        history, rows = self._user(str(user_id))
+        known = _known_set(rows, at_us, self.config)
+        levels = self._levels(level)
+        out = []
+        for item in map(str, item_ids):
+            for lv in levels:
+                label, topic = _classify_one(self._topics_at(items.get(item, {}).get(lv), at_us), lv, known,
+                                             history, self.config)
+                out.append(Classification(item, lv, label, topic, names.get(topic) if topic else None))
+        return out
+
+    def _at(self, at) -> int:
+        wm = self.manifest["watermark_us"]
+        at_us = _us(at) if at is not None else (wm + 1 if wm is not None else 0)
+        if wm is not None and at_us <= wm:
+            raise InputError(f"'at' must be after the snapshot's watermark {_ts(wm)}; a lookup answers for "
+                             "times the snapshot has fully seen.", source="classify", column="at")
+        return at_us
 
     def classify_many(self, pairs: pd.DataFrame, level: int | None = None, at=None) -> pd.DataFrame:
         """Vectorised classify: (user_id, item_id[, at]) in; user_id, item_id, level, label, topic_id,
         topic_name out, one row per pair and level, in input order."""
-        cfg = self.config
-        wm = self.manifest["watermark_us"]
         p = pairs.reset_index(drop=True)
         users = p["user_id"].astype(str).to_numpy()
-        items = p["item_id"].astype(str).to_numpy()
-        if "at" in p.columns:
-            ats = np.asarray([_us(v) for v in p["at"]], dtype=np.int64)
-        else:
-            ats = np.full(len(p), _us(at) if at is not None else (wm + 1 if wm is not None else 0), np.int64)
-        if wm is not None and len(ats) and (ats <= wm).any():
-            raise InputError(f"'at' must be after the snapshot's watermark {_ts(wm)}; a lookup answers for "
-                             "times the snapshot has fully seen.", source="classify", column="at")
-        levels = [level] if level is not None else sorted(self._levels())
-        out: list[tuple] = [None] * len(p)
-        groups = pd.DataFrame({"u": users, "a": ats}).groupby(["u", "a"], sort=False).indices
-        for (user, at_us), positions in groups.items():
+        items_of = p["item_id"].astype(str).to_numpy()
+        ats = np.asarray([self._at(v) for v in p["at"]] if "at" in p.columns else [self._at(at)] * len(p),
+                         dtype=np.int64)
+        items, names = self._catalog()
+        levels = self._levels(level)
+        out: list = [None] * len(p)
+        for (user, at_us), positions in pd.DataFrame({"u": users, "a": ats}).groupby(
+                ["u", "a"], sort=False).indices.items():
             history, rows = self._user(user)
-            state = {(r[0], r[1]): r for r in rows}
-            topics_of = self._item_topics(sorted(set(items[positions])), int(at_us))
+            known = _known_set(rows, int(at_us), self.config)
             for i in positions:
-                out[i] = [(user, items[i], lv, *_classify_one(topics_of.get((items[i], lv), []), lv, state,
-                                                               history, int(at_us), cfg)) for lv in levels]
+                item = items_of[i]
+                out[i] = [(user, item, lv, *_classify_one(self._topics_at(items.get(item, {}).get(lv), int(at_us)),
+                                                          lv, known, history, self.config))
+                          for lv in levels]
         df = pd.DataFrame([r for rs in out for r in rs], columns=["user_id", "item_id", "level", "label", "topic_id"])
         df["topic_id"] = df["topic_id"].astype(object).where(df["topic_id"].notna(), None)
-        df["topic_name"] = df["topic_id"].map(self._names(t for t in df["topic_id"] if t is not None))
-        df["topic_name"] = df["topic_name"].astype(object).where(df["topic_name"].notna(), None)
+        df["topic_name"] = [names.get(t) if t is not None else None for t in df["topic_id"]]
         return df
 
-    def _levels(self) -> list[int]:
-        levels = self.manifest["config"].get("levels")
-        if levels:
-            return list(levels)
-        return [r[0] for r in self._con("items.sqlite").execute("SELECT DISTINCT level FROM topics").fetchall()]
+    def _levels(self, level: int | None = None) -> list[int]:
+        if level is not None:
+            return [level]
+        configured = self.manifest["config"].get("levels")
+        if configured:
+            return list(configured)
+        self._catalog()
+        return list(self._catalog_levels)
 
 
 def _known(row, at_us: int, cfg: LabelConfig) -> bool:
@@ -429,13 +462,18 @@ def _known(row, at_us: int, cfg: LabelConfig) -> bool:
     return sum(1 for s in recent if at_us - cfg.memory_us <= s < at_us) >= cfg.min_support
 
 
-def _classify_one(topics: list[str], level: int, state: dict, history: int, at_us: int, cfg: LabelConfig):
+def _known_set(rows, at_us: int, cfg: LabelConfig) -> set[tuple[int, str]]:
+    """(level, topic_id) pairs of a user's footprint rows that are known at ``at_us``."""
+    return {(r[0], r[1]) for r in rows if _known(r, at_us, cfg)}
+
+
+def _classify_one(topics, level: int, known_set: set, history: int, cfg: LabelConfig):
     """The label rules of DESIGN.md for one item (topics in priority order) at one level."""
     if not topics:
         return "unplaced", None
     if history < cfg.warmup:
         return "cold_start", topics[0]
-    known = [_known(state.get((level, t)), at_us, cfg) for t in topics]
+    known = [(level, t) in known_set for t in topics]
     in_profile = any(known) if cfg.multi_topic == "all_new" else all(known)
     if in_profile:
         return "in_profile", next(t for t, k in zip(topics, known) if k)

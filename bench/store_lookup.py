@@ -1,0 +1,104 @@
+"""Benchmark of the lookup store: build, open, and lookup latency.
+
+U users with T topics each (synthetic footprints, 300 topics, 100k items), users asked for drawn
+Zipf-distributed with 10% unknown ids. Reports build time and size on disk, open time, reader
+RSS, p50/p99 of `footprint` and of `classify` with 500 candidates (cold: a fresh Store and
+fresh page cache per query pass; warm: the same pass again), and `classify_many` pairs/s.
+
+    .venv/bin/python bench/store_lookup.py [--users 1000000] [--topics-per-user 20] [--queries 2000]
+"""
+from __future__ import annotations
+
+import argparse
+import resource
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+from labeler import LabelConfig, Taxonomy, open_store, publish_store  # noqa: E402
+
+N_TOPICS, N_ITEMS = 300, 100_000
+
+
+def synthetic(users: int, per_user: int, seed: int = 0):
+    rng = np.random.default_rng(seed)
+    n = users * per_user
+    uid = np.repeat(np.arange(users), per_user)
+    topic = (rng.integers(0, N_TOPICS, n) + np.tile(np.arange(per_user) * 7, users)) % N_TOPICS
+    t0 = pd.Timestamp("2026-01-01T00:00:00Z").value // 1000
+    last = t0 + rng.integers(0, 90 * 86_400, n) * 1_000_000
+    ids = np.char.add("u", np.char.zfill(uid.astype(str), 7))
+    fp = pd.DataFrame({"user_id": ids, "level": 0, "topic_id": np.char.add("t", np.char.zfill(topic.astype(str), 4)),
+                       "interactions": rng.integers(1, 30, n), "known": True,
+                       "first_ts": pd.to_datetime(last - 86_400_000_000, unit="us", utc=True),
+                       "last_ts": pd.to_datetime(last, unit="us", utc=True)})
+    fp["engaged_interactions"] = fp["interactions"] // 2
+    fp["known_since"] = fp["first_ts"]
+    fp["history_len"] = 40
+    fp["recent_us"] = [[int(x)] for x in last]
+    fp = fp.drop_duplicates(["user_id", "level", "topic_id"])
+    items = [f"i{k:06d}" for k in range(N_ITEMS)]
+    it = pd.DataFrame({"item_id": items, "level": 0, "topic_id": [f"t{k % N_TOPICS:04d}" for k in range(N_ITEMS)],
+                       "confidence": 1.0})
+    top = pd.DataFrame({"topic_id": sorted(set(it["topic_id"])), "level": 0})
+    top["name"] = "topic " + top["topic_id"]
+    return fp, Taxonomy.from_tables(top, it, name="bench-store"), items
+
+
+def pct(xs, q):
+    return float(np.percentile(np.asarray(xs) * 1000, q))
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--users", type=int, default=1_000_000)
+    ap.add_argument("--topics-per-user", type=int, default=20)
+    ap.add_argument("--queries", type=int, default=2000)
+    args = ap.parse_args()
+    rng = np.random.default_rng(1)
+    fp, tax, items = synthetic(args.users, args.topics_per_user)
+    with tempfile.TemporaryDirectory() as d:
+        t0 = time.perf_counter()
+        publish_store(Path(d) / "s", fp, tax, LabelConfig())
+        build = time.perf_counter() - t0
+        size = sum(f.stat().st_size for f in (Path(d) / "s").rglob("*") if f.is_file()) / 2**20
+        print(f"build: {len(fp):,} footprint rows of {args.users:,} users in {build:.1f}s, {size:.0f} MiB on disk")
+        del fp
+        rss0 = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+        t0 = time.perf_counter()
+        store = open_store(Path(d) / "s")
+        print(f"open: {1000 * (time.perf_counter() - t0):.1f} ms")
+        ranks = np.minimum(rng.zipf(1.2, args.queries), args.users) - 1
+        asked = [f"u{r:07d}" if rng.random() >= 0.1 else f"unknown{r}" for r in ranks]
+        for label in ("cold", "warm"):
+            lat = []
+            for u in asked:
+                t0 = time.perf_counter()
+                store.footprint(u)
+                lat.append(time.perf_counter() - t0)
+            print(f"footprint ({label}): p50 {pct(lat, 50):.3f} ms, p99 {pct(lat, 99):.3f} ms (goal p99 < 1 ms)")
+        cands = [list(rng.choice(items, 500, replace=False)) for _ in range(min(200, args.queries))]
+        for label in ("cold", "warm"):
+            lat = []
+            for u, c in zip(asked, cands):
+                t0 = time.perf_counter()
+                store.classify(u, c)
+                lat.append(time.perf_counter() - t0)
+            print(f"classify 500 candidates ({label}): p50 {pct(lat, 50):.2f} ms, p99 {pct(lat, 99):.2f} ms "
+                  f"(goal p99 < 5 ms)")
+        pairs = pd.DataFrame({"user_id": np.repeat(asked[:200], 500), "item_id": np.concatenate(cands)})
+        t0 = time.perf_counter()
+        store.classify_many(pairs)
+        secs = time.perf_counter() - t0
+        print(f"classify_many: {len(pairs) / secs:,.0f} pairs/s")
+        print(f"reader RSS growth after open and queries: "
+              f"{(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss - rss0) / 1024:.0f} MiB")
+
+
+if __name__ == "__main__":
+    main()
