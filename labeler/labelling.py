@@ -65,6 +65,7 @@ class LabelRun:
     ev: Any                # Ibis table: the validated input
     intake: Intake
     as_of: Any = None
+    materialized: bool = False
 
     @functools.cached_property
     def counts(self) -> dict[str, int]:
@@ -88,9 +89,9 @@ class LabelRun:
         Sorting, summarising and hashing then read that table: the window stages are done and
         have released their memory before a sort starts.
         """
-        if not getattr(self, "_materialized", False):
+        if not self.materialized:
             self.labels = self.labels.cache()
-            self._materialized = True
+            self.materialized = True
         return self
 
     # -- results as Arrow / pandas --------------------------------------------------------------

@@ -498,7 +498,7 @@ def forget_users(path, user_ids: Iterable[str], outputs: Iterable = ()) -> str:
             table = pq.read_table(f)
             if "user_id" not in table.column_names:
                 continue
-            keep = table.filter(pc.invert(pc.is_in(table.column("user_id"), value_set=pa_array(user_ids))))
+            keep = table.filter(pc.invert(pc.is_in(table.column("user_id"), value_set=_strings(user_ids))))
             if keep.num_rows != table.num_rows:
                 tmp = f.with_name(f".{f.name}.{uuid.uuid4().hex}")
                 pq.write_table(keep, tmp)
@@ -532,7 +532,7 @@ def forget_users(path, user_ids: Iterable[str], outputs: Iterable = ()) -> str:
     return name
 
 
-def pa_array(values):
+def _strings(values):
     import pyarrow as pa
     return pa.array(values, pa.string())
 
