@@ -24,6 +24,7 @@ import shutil
 import sqlite3
 import threading
 import uuid
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import Iterable
 
@@ -73,12 +74,13 @@ def _tombstones(root: Path) -> set[str]:
 
 def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None, *,
                   history: pd.DataFrame | None = None, as_of=None, shards: int = 16,
-                  retain: int = 3) -> str:
+                  retain: int = 3, workers: int | None = None) -> str:
     """Publish a new store snapshot from a footprints table; returns the snapshot name.
 
     ``footprints`` is what :func:`labeler.build_footprints` returns (or a :class:`LabelRun`).
     Its ``history_len`` and ``recent_us`` columns let lookups apply ``warmup`` and memory windows;
-    ``history`` (user_id, history_len) adds users whose every interaction was unplaced.
+    ``history`` (user_id, history_len) adds users whose every interaction was unplaced. Shards
+    are written in parallel by ``workers`` threads (default: one per core).
     """
     from .labelling import LabelRun
     cfg = config or LabelConfig()
@@ -114,17 +116,22 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
     _write_items(tmp / "items.sqlite", taxonomy)
     fp["_shard"] = [shard_of(u, shards) for u in fp["user_id"]]
     users["_shard"] = [shard_of(u, shards) for u in users["user_id"]]
-    shard_info = {}
+    shard_info, to_write = {}, []
+    by_shard_fp, by_shard_users = dict(tuple(fp.groupby("_shard"))), dict(tuple(users.groupby("_shard")))
     for k in range(shards):
-        f_k, u_k = fp[fp["_shard"] == k], users[users["_shard"] == k]
+        f_k = by_shard_fp.get(k, fp.iloc[:0])
+        u_k = by_shard_users.get(k, users.iloc[:0])
         digest = _shard_digest(f_k, u_k)
         fname = f"users-{k:02d}.sqlite"
         prev = (previous or {}).get("shards", {}).get(fname)
         if prev and prev["digest"] == digest and previous["n_shards"] == shards:
             os.link(root / "snapshots" / previous["name"] / fname, tmp / fname)
         else:
-            _write_shard(tmp / fname, f_k, u_k)
+            to_write.append((tmp / fname, f_k, u_k))
         shard_info[fname] = {"digest": digest, "users": int(len(u_k)), "rows": int(len(f_k))}
+    with ThreadPoolExecutor(max_workers=max(1, min(workers or os.cpu_count() or 1, len(to_write) or 1))) as pool:
+        for fut in [pool.submit(_write_shard, *job) for job in to_write]:
+            fut.result()  # re-raises a failed write before anything is published
     manifest = {"format": FORMAT, "name": name, "sequence": seq, "tool_version": __version__,
                 "created": dt.datetime.now(dt.timezone.utc).isoformat(), "watermark_us": watermark,
                 "taxonomy_version": taxonomy.version, "config": json.loads(cfg.canonical_json()),
