@@ -109,7 +109,8 @@ def generate_scenario(seed: int = 7, n_items: int = 3200, n_users: int = 1200,
         user_id = f"u{u:04d}"
         kind = rng.choice(["explorer", "homebody", "churner"], p=[0.6, 0.25, 0.15])
         arm = "explore_boost" if rng.random() < 0.5 else "control"
-        churn_week = int(rng.integers(2, weeks)) if kind == "churner" else weeks
+        # a churner leaves after week 2 (or week 1 in very short scenarios); the same draw as before
+        churn_week = int(rng.integers(min(2, weeks - 1), weeks)) if kind == "churner" and weeks > 1 else weeks
         first = themes[int(rng.integers(len(themes)))]
         interests = [first]
         for _ in range(int(rng.integers(0, 3))):
