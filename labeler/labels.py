@@ -8,7 +8,7 @@ every engine alike.
 Steps, for each interaction e = (u, i, t) and level L:
 
 1. ``prepare``: drop rows whose ``event_type`` is not listed, collapse duplicate events (same
-   user, item, ts and event_id: the row with the highest engagement is kept), and count them;
+   user, item, ts and event_id become one row with the highest engagement), and count them;
    ``history_len`` = number of the user's interactions strictly before t (rank over ts).
 2. ``topic_rows``: one row per (interaction, level, item topic), as of t; no topic = unplaced.
 3. ``support``: qualifying interactions of u on topic T in the window before t; T is known at t
