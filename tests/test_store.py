@@ -11,7 +11,7 @@ import threading
 import pandas as pd
 import pytest
 
-from labeler import (ArtifactError, InputError, LabelConfig, Taxonomy, forget_users, label_interactions,
+from labeler import (ArtifactError, InputError, LabelConfig, Taxonomy, label_interactions,
                      open_store, plan_labels, publish_store)
 from labelcases import T0, log, taxonomy
 
@@ -106,7 +106,7 @@ def test_publish_rewrites_only_changed_shards_and_keeps_retention(tmp_path):
 
 def test_interrupted_publish_leaves_the_previous_snapshot_served(tmp_path, monkeypatch):
     """A publish that fails before the pointer switch leaves readers on the previous snapshot."""
-    import labeler.store as st
+    import labeler.store.publish as st
     first = _publish(tmp_path)
 
     def boom(*a, **k):

@@ -1,0 +1,84 @@
+"""Erasure: users removed from the store, its retained snapshots and label outputs, tombstoned."""
+from __future__ import annotations
+
+import json
+import logging
+import os
+import uuid
+from pathlib import Path
+from typing import Iterable
+
+import pandas as pd
+
+from .layout import NEVER, tombstones, user_digest
+from .publish import publish_store
+from .reader import Store
+
+log = logging.getLogger(__name__)
+
+
+def forget_users(path, user_ids: Iterable[str], outputs: Iterable = ()) -> str:
+    """Erase users: tombstone them, publish a snapshot without them, drop every older snapshot, and
+    rewrite the Parquet files under each folder in ``outputs`` (e.g. `labeler label --out` folders)
+    without their rows. Returns the new snapshot's name. Later publishes skip tombstoned users.
+    """
+    import pyarrow.compute as pc
+    import pyarrow.parquet as pq
+    user_ids = [str(u) for u in user_ids]
+    for folder in outputs:
+        for f in sorted(Path(folder).rglob("*.parquet")):
+            table = pq.read_table(f)
+            if "user_id" not in table.column_names:
+                continue
+            keep = table.filter(pc.invert(pc.is_in(table.column("user_id"), value_set=_strings(user_ids))))
+            if keep.num_rows != table.num_rows:
+                tmp = f.with_name(f".{f.name}.{uuid.uuid4().hex}")
+                pq.write_table(keep, tmp)
+                os.replace(tmp, f)
+    root = Path(path)
+    store = Store(root)
+    digests = {user_digest(str(u)) for u in user_ids}
+    tomb = tombstones(root) | digests
+    tmp = root / f".tombstones.{uuid.uuid4().hex}"
+    tmp.write_text(json.dumps(sorted(tomb)))
+    os.replace(tmp, root / "tombstones.json")
+    frames, users = [], []
+    for fname in store.manifest["shards"]:
+        con = store._con(fname)
+        f = pd.read_sql_query("SELECT * FROM topics", con)
+        u = pd.read_sql_query("SELECT * FROM users", con)
+        frames.append(f)
+        users.append(u)
+    fp = pd.concat(frames, ignore_index=True)
+    fp = fp.rename(columns={"first_us": "first_ts", "last_us": "last_ts", "known_since_us": "known_since"})
+    for c in ("first_ts", "last_ts", "known_since"):
+        fp[c] = pd.to_datetime(fp[c], unit="us", utc=True)
+    fp["recent_us"] = fp.pop("recent").map(json.loads)
+    fp["known"] = fp["known"].astype(bool)
+    hist = pd.concat(users, ignore_index=True)
+    fp = fp.merge(hist, on="user_id", how="left")
+    tax = _StoredTaxonomy(store)
+    name = publish_store(root, fp, tax, store.config, history=hist, as_of=store.watermark,
+                         shards=store.manifest["n_shards"], retain=1)
+    log.info("forgot %d user(s); published %s and removed older snapshots", len(digests), name)
+    return name
+
+
+def _strings(values):
+    import pyarrow as pa
+    return pa.array(values, pa.string())
+
+
+class _StoredTaxonomy:
+    """The taxonomy tables of a snapshot, enough to publish the next snapshot."""
+
+    def __init__(self, store: Store):
+        con = store._con("items.sqlite")
+        it = pd.read_sql_query("SELECT item_id, level, topic_id, valid_from_us, pos FROM item_topics", con)
+        it["confidence"] = 1.0 - 1e-3 * it["pos"]
+        vf = it.pop("valid_from_us")
+        if (vf != NEVER).any():
+            it["valid_from"] = pd.to_datetime(vf.where(vf != NEVER), unit="us", utc=True)
+        self.item_topics = it.drop(columns="pos")
+        self.topics = pd.read_sql_query("SELECT topic_id, level, parent_id, name FROM topics", con)
+        self.version = store.manifest["taxonomy_version"]

@@ -1,0 +1,77 @@
+"""Store layout shared by publishing and reading: shard numbers, snapshot pointer, manifests."""
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from ..errors import ArtifactError
+
+FORMAT = "labeler-store/1"
+NEVER = np.iinfo("int64").min
+
+
+def shard_of(user_id: str, shards: int) -> int:
+    """Stable shard number of a user id (BLAKE2b, independent of Python's hash seed)."""
+    return int.from_bytes(hashlib.blake2b(user_id.encode("utf-8", "surrogatepass"), digest_size=8).digest(),
+                          "little") % shards
+
+
+def user_digest(user_id: str) -> str:
+    return hashlib.sha256(user_id.encode("utf-8", "surrogatepass")).hexdigest()
+
+
+def to_us(ts) -> int | None:
+    if ts is None or (isinstance(ts, float) and np.isnan(ts)) or ts is pd.NaT:
+        return None
+    return int(pd.Timestamp(ts).value // 1000)
+
+
+def fsync_dir(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def tombstones(root: Path) -> set[str]:
+    p = root / "tombstones.json"
+    return set(json.loads(p.read_text())) if p.exists() else set()
+
+
+def current_name(root: Path) -> str:
+    try:
+        return (root / "CURRENT").read_text().strip()
+    except FileNotFoundError:
+        raise ArtifactError(f"{root}: not a store (no CURRENT). Publish one with `labeler label --store` "
+                            "or labeler.publish_store().") from None
+
+
+def read_manifest(root: Path, name: str) -> dict:
+    p = root / "snapshots" / name / "manifest.json"
+    try:
+        m = json.loads(p.read_text())
+    except (FileNotFoundError, json.JSONDecodeError) as exc:
+        raise ArtifactError(f"{p}: snapshot manifest missing or unreadable ({exc}). The store is damaged; "
+                            "publish a new snapshot.") from None
+    if m.get("format") != FORMAT:
+        raise ArtifactError(f"{p}: unknown store format {m.get('format')!r}; expected {FORMAT!r}.")
+    return m
+
+
+def clean(root: Path, keep: int) -> None:
+    """Remove snapshots beyond the newest ``keep`` (never the current one) and stale temp folders."""
+    current = current_name(root)
+    snaps = sorted((p for p in (root / "snapshots").iterdir() if p.name.startswith("snap-")), key=lambda p: p.name)
+    for p in snaps[:-max(keep, 1)]:
+        if p.name != current:
+            shutil.rmtree(p, ignore_errors=True)
+    for p in (root / "snapshots").glob(".snap-*.tmp"):
+        if p.name != f".{current}.tmp":
+            shutil.rmtree(p, ignore_errors=True)
