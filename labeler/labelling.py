@@ -26,8 +26,8 @@ from . import __version__
 from .config import InputConfig, LabelConfig
 from .engines import Engine, make_engine
 from .intake import interactions_table, item_topics_table
-from .labels import footprint_rows, known_topic_counts, known_transitions, label_rows, prepare, \
-    topic_rows, with_support
+from .labels import each_interaction_once, footprint_rows, known_topic_counts, known_transitions, label_rows, \
+    prepare, topic_rows, user_history, with_support
 from .tables import FOOTPRINTS_COLUMNS, LABEL_VALUES, LABELS_COLUMNS, Intake
 
 log = logging.getLogger(__name__)
@@ -113,11 +113,7 @@ class LabelRun:
 
     def history_frame(self) -> pd.DataFrame:
         """user_id, history_len: each user's interactions up to ``as_of_us`` (unplaced ones included)."""
-        rows = self.base
-        first_level = rows.level.min().as_scalar()
-        once = rows.filter((rows.level == first_level) & (rows.pos.isnull() | (rows.pos == 0))
-                           & (rows.ts_us <= self.as_of_us))
-        return self.engine.to_pandas(once.group_by("user_id").aggregate(history_len=once.count()))
+        return self.engine.to_pandas(user_history(self.base, self.as_of_us))
 
     def footprints_frame(self) -> pd.DataFrame:
         return self.footprints_arrow().to_pandas()
@@ -283,8 +279,7 @@ def _intake_counts(eng, ev, rows, cfg, intake: Intake) -> dict[str, int]:
     if cfg.event_types is not None:
         typed = ev.filter(ev.event_type.isin(list(cfg.event_types)))
         n_typed = int(eng.to_pandas(typed.aggregate(n=typed.count()))["n"].iloc[0])
-    first_level = rows.level.min().as_scalar()
-    once = rows.filter((rows.level == first_level) & (rows.pos.isnull() | (rows.pos == 0)))
+    once = each_interaction_once(rows)
     stats = eng.to_pandas(once.aggregate(n=once.count(), mx=once.ts_us.max()))
     n_out = int(stats["n"].iloc[0])
     return {"dropped_event_type": intake.rows_in - n_typed, "duplicate_events_collapsed": n_typed - n_out,

@@ -167,6 +167,19 @@ def label_rows(rows: ir.Table, counts: ir.Table, cfg: LabelConfig, single_topic:
                       out.known_topics.cast("int64").name("known_topics"))
 
 
+def each_interaction_once(rows: ir.Table) -> ir.Table:
+    """Topic rows cut to one per interaction: the first level's primary (or unplaced) row."""
+    first_level = rows.level.min().as_scalar()
+    return rows.filter((rows.level == first_level) & (rows.pos.isnull() | (rows.pos == 0)))
+
+
+def user_history(rows: ir.Table, as_of_us: int) -> ir.Table:
+    """(user_id, history_len): each user's interactions up to ``as_of_us``, unplaced ones included."""
+    once = each_interaction_once(rows)
+    once = once.filter(once.ts_us <= as_of_us)
+    return once.group_by("user_id").aggregate(history_len=once.count())
+
+
 def footprint_rows(rows: ir.Table, transitions: ir.Table, cfg: LabelConfig, as_of_us: int) -> ir.Table:
     """The footprints table as seen by an interaction just after ``as_of_us``.
 
@@ -188,10 +201,7 @@ def footprint_rows(rows: ir.Table, transitions: ir.Table, cfg: LabelConfig, as_o
     latest = qual.mutate(_n=ibis.row_number().over(group_by=keys, order_by=ibis.desc(qual.ts_us)))
     latest = latest.filter(latest._n < cfg.min_support)
     recent = latest.group_by(["user_id", "level", "topic_id"]).aggregate(recent_us=latest.ts_us.collect().sort())
-    first_level = rows.level.min().as_scalar()
-    once = rows.filter((rows.level == first_level) & (rows.pos.isnull() | (rows.pos == 0))
-                       & (rows.ts_us <= as_of_us))
-    history = once.group_by("user_id").aggregate(history_len=once.count())
+    history = user_history(rows, as_of_us)
     j = agg.left_join(since, ["user_id", "level", "topic_id"])
     out = j.select(*agg.columns, _since_us=j._since_us)
     j = out.left_join(recent, ["user_id", "level", "topic_id"])
