@@ -170,6 +170,25 @@ def _clean_by_statistics(files: list[Path], columns: list[str]) -> set[str]:
     return proven
 
 
+def rank_item_topics(item_topics: pd.DataFrame) -> pd.DataFrame:
+    """item_topics with ``valid_from_us`` (int64 minimum = valid forever) and ``pos``, the topic's
+    rank within its item, level and validity period: highest confidence first, then smallest id.
+
+    The one place this order is decided, for labels and lookups alike.
+    """
+    it = item_topics.copy()
+    if "valid_from" in it.columns:
+        vf = pd.to_datetime(it["valid_from"], utc=True)
+        it["valid_from_us"] = np.where(vf.isna(), np.iinfo("int64").min,
+                                       vf.astype("datetime64[us, UTC]").astype("int64"))
+    else:
+        it["valid_from_us"] = np.iinfo("int64").min
+    keys = ["item_id", "level", "valid_from_us"]
+    it = it.sort_values(keys + ["confidence", "topic_id"], ascending=[True, True, True, False, True], kind="stable")
+    it["pos"] = it.groupby(keys).cumcount()
+    return it
+
+
 def item_topics_table(engine, tax, cfg: LabelConfig):
     """The taxonomy's item_topics with pos (0 = primary), the no-boost flag and validity bounds.
 
@@ -191,19 +210,13 @@ def item_topics_table(engine, tax, cfg: LabelConfig):
         log.warning("no_boost_topics %s are not topics of taxonomy %s", missing, tax.version[:12])
     it["nb"] = it["topic_id"].isin(nb) | it["topic_id"].map(parent).isin(nb)
     has_valid = "valid_from" in it.columns
+    it = rank_item_topics(it)
     if has_valid:
-        vf = pd.to_datetime(it["valid_from"], utc=True)
-        it["valid_from_us"] = np.where(vf.isna(), np.iinfo("int64").min,
-                                       (vf.astype("datetime64[us, UTC]").astype("int64")))
         starts = it[["item_id", "level", "valid_from_us"]].drop_duplicates().sort_values(
             ["item_id", "level", "valid_from_us"])
         nxt = starts.groupby(["item_id", "level"])["valid_from_us"].shift(-1).astype("Int64")
         starts["valid_to_us"] = nxt.fillna(np.iinfo("int64").max).astype("int64")
         it = it.merge(starts, on=["item_id", "level", "valid_from_us"])
-    keys = ["item_id", "level"] + (["valid_from_us"] if has_valid else [])
-    it = it.sort_values(keys + ["confidence", "topic_id"], ascending=[True] * len(keys) + [False, True],
-                        kind="stable")
-    it["pos"] = it.groupby(keys).cumcount()
     cols = ["item_id", "level", "topic_id", "pos", "nb"] + (["valid_from_us", "valid_to_us"] if has_valid else [])
     out = it[cols].reset_index(drop=True)
     out["level"] = out["level"].astype("int32")

@@ -17,7 +17,8 @@ import pandas as pd
 from .. import __version__
 from ..config import LabelConfig
 from ..errors import InputError
-from .layout import FORMAT, NEVER, clean, current_name, fsync_dir, read_manifest, shard_of, to_us, tombstones, \
+from ..intake import rank_item_topics
+from .layout import FORMAT, clean, current_name, fsync_dir, read_manifest, shard_of, to_us, tombstones, \
     user_digest
 
 log = logging.getLogger(__name__)
@@ -144,12 +145,7 @@ def _write_shard(path: Path, fp: pd.DataFrame, users: pd.DataFrame) -> None:
 
 
 def _write_items(path: Path, taxonomy) -> None:
-    it = taxonomy.item_topics.copy()
-    it = it.sort_values(["item_id", "level", "confidence", "topic_id"], ascending=[True, True, False, True])
-    vf = it["valid_from"] if "valid_from" in it.columns else pd.Series([None] * len(it), index=it.index)
-    it["valid_from_us"] = [NEVER if v is None or v is pd.NaT or (isinstance(v, float) and np.isnan(v))
-                           else to_us(v) for v in vf]
-    it["pos"] = it.groupby(["item_id", "level", "valid_from_us"]).cumcount()
+    it = rank_item_topics(taxonomy.item_topics)
     con = sqlite3.connect(path)
     con.executescript("""
         PRAGMA journal_mode = OFF; PRAGMA synchronous = OFF;
