@@ -120,8 +120,28 @@ class EngineConfig(_Strict):
     threads: int | None = Field(None, ge=1)
 
 
+class RunConfig(_Strict):
+    """How the scheduled job (`labeler run`) treats partitions, late data and items over time."""
+
+    taxonomy_from: Literal["text", "categories"] = Field(
+        "text", description="first run: learn the taxonomy from item text, or take the category column")
+    category_column: str = "category"
+    lookback_partitions: int = Field(3, ge=0, description="re-check the last K processed partitions")
+    late_horizon_days: float = Field(30.0, gt=0, description="events older than their partition's "
+                                     "date minus this are quarantined, not labelled")
+    on_bad_partition: Literal["skip", "stop"] = "skip"
+    backfill_late_items: bool = False
+    refresh_unplaced_share: float = Field(0.2, ge=0, le=1, description="share of new items below "
+                                          "min_confidence that makes a taxonomy refresh due")
+    store_shards: int = Field(16, ge=1)
+    keep_generations: int = Field(3, ge=1, description="output generations (and store snapshots) kept")
+
+
 class JobConfig(_Strict):
-    """Everything one scheduled run needs, loaded from a TOML file."""
+    """Everything one scheduled run needs, loaded from a TOML file.
+
+    Relative paths in a TOML file are relative to that file's folder.
+    """
 
     items: str | None = None
     interactions: str | None = None
@@ -131,6 +151,7 @@ class JobConfig(_Strict):
     labels: LabelConfig = LabelConfig()
     gate: GateConfig = GateConfig()
     engine: EngineConfig = EngineConfig()
+    run: RunConfig = RunConfig()
 
 
 def _env_overrides(environ: dict[str, str]) -> dict[str, Any]:
@@ -175,6 +196,13 @@ def load_job_config(path: str | Path | None = None, flags: dict[str, Any] | None
             raise ConfigError(f"{p}: config file not found. Pass an existing TOML file with --config.") from None
         except tomllib.TOMLDecodeError as exc:
             raise ConfigError(f"{p}: not valid TOML ({exc}). Fix the syntax and run again.") from None
+        for key in ("items", "interactions", "work_dir"):
+            if isinstance(data.get(key), str) and not Path(data[key]).is_absolute():
+                data[key] = str((p.parent / data[key]).resolve())
+        tax = data.get("taxonomy")
+        if isinstance(tax, dict) and isinstance(tax.get("embedding_cache"), str) \
+                and not Path(tax["embedding_cache"]).is_absolute():
+            tax["embedding_cache"] = str((p.parent / tax["embedding_cache"]).resolve())
     data = _merge(data, _env_overrides(os.environ if environ is None else environ))
     data = _merge(data, flags or {})
     return validate_config(JobConfig, data, source)

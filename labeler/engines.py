@@ -40,7 +40,10 @@ class Engine:
         name = f"_{prefix}_{uuid.uuid4().hex[:8]}"
         return self.con.create_table(name, data, temp=True)
 
-    def read_parquet(self, path: str | os.PathLike):
+    def read_parquet(self, path):
+        """A lazy table over one Parquet path (a glob allowed) or a list of paths."""
+        if isinstance(path, (list, tuple)):
+            return self.con.read_parquet([str(p) for p in path])
         return self.con.read_parquet(str(path))
 
     def to_arrow(self, expr) -> pa.Table:

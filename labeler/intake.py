@@ -7,6 +7,7 @@ never has to fit in it. Other Parquet files are read into memory and validated l
 """
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import logging
 import os
@@ -32,10 +33,25 @@ def _with_ts_us(t):
     return t.mutate(ts_us=t.ts.delta(EPOCH, unit="microsecond"))
 
 
+@dataclasses.dataclass
+class Staged:
+    """Interactions the job has already validated and stored: an engine table with the columns
+    user_id, item_id, ts (UTC, us), engagement, event_id, event_type, arm. Taken as they are."""
+
+    table: object
+    source: str
+    rows: int
+    content_hash: str
+
+
 def interactions_table(engine, data, input_config: InputConfig | None = None,
                        source: str | None = None):
     """Validate ``data`` and return (engine table with ts_us, Intake)."""
     cfg = input_config or InputConfig()
+    if isinstance(data, Staged):
+        intake = Intake(source=data.source, rows_in=data.rows, rows_out=data.rows,
+                        content_hash=data.content_hash)
+        return _with_ts_us(data.table.select(*_COLUMNS)), intake
     if isinstance(data, (str, os.PathLike)):
         path = Path(data)
         source = source or str(path)
@@ -75,6 +91,11 @@ def files_hash(path: Path) -> str:
             for chunk in iter(lambda: fh.read(1 << 22), b""):
                 h.update(chunk)
     return h.hexdigest()
+
+
+def interactions_schema() -> pa.Schema:
+    """The Arrow schema of validated interactions."""
+    return _arrow_schema()
 
 
 def _arrow_schema() -> pa.Schema:
@@ -192,6 +213,9 @@ def rank_item_topics(item_topics: pd.DataFrame) -> pd.DataFrame:
 def item_topics_table(engine, tax, cfg: LabelConfig):
     """The taxonomy's item_topics with pos (0 = primary), the no-boost flag and validity bounds.
 
+    A row with a null topic_id and a valid_from says "no topic from then on" (an item whose new
+    text could not be placed): it ends the period before it and is then dropped.
+
     Returns (table, levels table, whether validity bounds are used, whether every item has at most
     one topic per level and period).
     """
@@ -218,7 +242,7 @@ def item_topics_table(engine, tax, cfg: LabelConfig):
         starts["valid_to_us"] = nxt.fillna(np.iinfo("int64").max).astype("int64")
         it = it.merge(starts, on=["item_id", "level", "valid_from_us"])
     cols = ["item_id", "level", "topic_id", "pos", "nb"] + (["valid_from_us", "valid_to_us"] if has_valid else [])
-    out = it[cols].reset_index(drop=True)
+    out = it.loc[it["topic_id"].notna(), cols].reset_index(drop=True)  # null topic: none from valid_from
     out["level"] = out["level"].astype("int32")
     levels_t = engine.table(pd.DataFrame({"level": pd.Series(sorted(levels), dtype="int32")}), "levels")
     single_topic = bool((out["pos"] == 0).all())

@@ -150,13 +150,13 @@ def _write_items(path: Path, taxonomy) -> None:
     con.executescript("""
         PRAGMA journal_mode = OFF; PRAGMA synchronous = OFF;
         CREATE TABLE item_topics (item_id TEXT NOT NULL, level INTEGER NOT NULL, valid_from_us INTEGER NOT NULL,
-            pos INTEGER NOT NULL, topic_id TEXT NOT NULL, PRIMARY KEY (item_id, level, valid_from_us, pos))
+            pos INTEGER NOT NULL, topic_id TEXT, PRIMARY KEY (item_id, level, valid_from_us, pos))
             WITHOUT ROWID;
         CREATE TABLE topics (topic_id TEXT PRIMARY KEY, level INTEGER, parent_id TEXT, name TEXT) WITHOUT ROWID;""")
     con.executemany("INSERT INTO item_topics VALUES (?, ?, ?, ?, ?)",
                     zip(it["item_id"].astype(str), it["level"].astype(int).tolist(),
                         it["valid_from_us"].astype(int).tolist(), it["pos"].astype(int).tolist(),
-                        it["topic_id"].astype(str)))
+                        [None if pd.isna(t) else str(t) for t in it["topic_id"]]))
     t = taxonomy.topics
     con.executemany("INSERT INTO topics VALUES (?, ?, ?, ?)",
                     zip(t["topic_id"].astype(str), t["level"].astype(int).tolist(),

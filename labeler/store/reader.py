@@ -145,10 +145,11 @@ class Store:
                     "SELECT item_id, level, valid_from_us, topic_id FROM item_topics "
                     "ORDER BY item_id, level, valid_from_us, pos"):
                 periods = items.setdefault(item, {}).setdefault(level, [])
+                got = (topic,) if topic is not None else ()  # null: no topic from valid_from on
                 if periods and periods[-1][0] == vf:
-                    periods[-1] = (vf, periods[-1][1] + (topic,))
+                    periods[-1] = (vf, periods[-1][1] + got)
                 else:
-                    periods.append((vf, (topic,)))
+                    periods.append((vf, got))
             names = dict(con.execute("SELECT topic_id, name FROM topics").fetchall())
             levels = sorted(r[0] for r in con.execute("SELECT DISTINCT level FROM topics"))
             con.close()

@@ -170,7 +170,7 @@ class Taxonomy:
         for col, default in (("parent_id", None), ("keywords", None), ("size", 0), ("first_version", None)):
             if col not in topics.columns:
                 topics[col] = default
-        missing = sorted(set(item_topics["topic_id"]) - set(topics["topic_id"]))
+        missing = sorted(set(item_topics["topic_id"].dropna()) - set(topics["topic_id"]))
         if missing:
             raise InputError(f"item_topics names topics not in the topics table: {missing[:5]}.",
                              source="item_topics", column="topic_id")

@@ -1,0 +1,6 @@
+"""The scheduled batch job: incremental, idempotent, crash-safe (see :mod:`labeler.job.run`)."""
+from .failpoints import FAILPOINTS
+from .lock import RunLock
+from .run import JobResult, current_outputs, load_state, run_job
+
+__all__ = ["FAILPOINTS", "JobResult", "RunLock", "current_outputs", "load_state", "run_job"]

@@ -1,0 +1,493 @@
+"""`labeler run`: one scheduled, incremental, crash-safe pass of the whole pipeline.
+
+A run, under the work folder's lock:
+
+1. items: the first run builds the taxonomy; later runs place new and changed items into it,
+   valid from just after the last watermark (the item register);
+2. partitions: new ones are staged, the last ``lookback_partitions`` are re-hashed and staged
+   again when changed, bad ones are rejected by path;
+3. the users those changes touch are re-labelled over their whole history (labels are a
+   per-user computation, so this equals a full run), and only their rows, from the earliest
+   changed date on, are rewritten into a new output generation;
+4. the lookup store is published, the run manifest written, and last of all the state file,
+   atomically: a crash anywhere before that leaves the previous state, and the next run redoes
+   the same work and writes the same bytes.
+"""
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+import functools
+import hashlib
+import json
+import logging
+import os
+import shutil
+import time
+import uuid
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from .. import __version__
+from ..config import JobConfig
+from ..engines import make_engine
+from ..errors import ArtifactError, ConfigError, EngineError, InputError, RejectedError
+from ..intake import Staged as StagedInput
+from ..labelling import plan_labels
+from ..tables import normalize_items, read_table
+from ..taxonomy import Taxonomy, build_taxonomy
+from . import failpoints
+from .lock import RunLock
+from .outputs import GenerationWriter, age_footprints, write_table
+from .partitions import DAY_US, Staged, discover, stage
+from .register import first_register, read_register, register_hash_by_day, taxonomy_view, text_hashes, update_register
+
+log = logging.getLogger(__name__)
+
+STATE_FORMAT = "labeler-job-state/1"
+
+
+@dataclasses.dataclass
+class JobResult:
+    manifest: dict[str, Any]
+    manifest_path: Path
+    exit_code: int
+
+
+def run_job(config: JobConfig, *, full: bool = False, rebuild_taxonomy: bool = False, embedder=None,
+            progress: bool = False) -> JobResult:
+    """Run the scheduled job once (see the module docstring); returns the run manifest.
+
+    ``full`` recomputes everything from the staged partitions; ``embedder`` overrides the
+    taxonomy's embedding model (tests use the hashing embedder).
+    """
+    if not config.items or not config.interactions:
+        raise ConfigError("the job needs 'items' (an items table) and 'interactions' (a folder of date "
+                          "partitions) in its TOML file. See fixtures/demo-job.toml.")
+    work = Path(config.work_dir)
+    work.mkdir(parents=True, exist_ok=True)
+    with RunLock(work) as lock:
+        failpoints.hit("after_lock")
+        try:
+            return _Run(config, work, full, rebuild_taxonomy, embedder, progress, lock).go()
+        except OSError as exc:
+            import errno
+            if exc.errno == errno.ENOSPC:
+                raise EngineError(f"{work}: disk full while writing ({exc.strerror}). Nothing was committed: "
+                                  "the previous state and outputs are intact. Free space and run again.") from None
+            raise
+
+
+def load_state(work: Path) -> dict | None:
+    p = work / "state.json"
+    if not p.exists():
+        return None
+    try:
+        state = json.loads(p.read_text())
+    except json.JSONDecodeError as exc:
+        raise ArtifactError(f"{p}: state file is not valid JSON ({exc}). It is written atomically, so this "
+                            "means it was edited or damaged; restore it or remove the work folder for a "
+                            "full rebuild.") from None
+    if state.get("format") != STATE_FORMAT:
+        raise ArtifactError(f"{p}: unknown state format {state.get('format')!r} (this tool writes {STATE_FORMAT}).")
+    return state
+
+
+def _write_json(path: Path, data: dict, point: str | None = None) -> None:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex}")
+    if point:
+        failpoints.hit(f"write_{point}")
+    with open(tmp, "w") as fh:
+        fh.write(json.dumps(data, indent=2, sort_keys=True) + "\n")
+        fh.flush()
+        os.fsync(fh.fileno())
+    if point:
+        failpoints.hit(f"mid_{point}_write")
+    os.replace(tmp, path)
+
+
+def _day(us: int) -> str:
+    return pd.Timestamp(us, unit="us", tz="UTC").strftime("%Y-%m-%d")
+
+
+def _day_start(date: str) -> int:
+    return int(pd.Timestamp(date, tz="UTC").value // 1000)
+
+
+class _Run:
+    def __init__(self, config: JobConfig, work: Path, full: bool, rebuild: bool, embedder, progress: bool, lock):
+        self.cfg, self.work, self.embedder, self.progress = config, work, embedder, progress
+        self.full_requested, self.rebuild = full, rebuild
+        self.lock = lock
+        self.timings: dict[str, float] = {}
+        self.started = dt.datetime.now(dt.timezone.utc)
+
+    def _timed(self, stage: str, t0: float) -> None:
+        self.timings[stage] = round(time.perf_counter() - t0, 3)
+
+    # -- the run --------------------------------------------------------------------------------
+    def go(self) -> JobResult:
+        cfg, work = self.cfg, self.work
+        state = load_state(work)
+        seq = (state["run"] + 1) if state else 1
+        run_id = f"run-{seq:06d}"
+        mode, why = self._mode(state)
+        if mode == "full" and state is not None:
+            log.info("full recompute: %s", why)
+
+        t0 = time.perf_counter()
+        tax, register, changes = self._items(state, mode)
+        self._timed("items", t0)
+        failpoints.hit("after_items")
+
+        t0 = time.perf_counter()
+        parts, statuses, rejected, ignored, affected_old = self._partitions(state, mode)
+        self._timed("staging", t0)
+        failpoints.hit("after_staging")
+
+        reg_changed = state is None or mode == "full" or changes["added_rows"] > 0
+        staged_new = [n for n, st in statuses.items() if st in ("new", "changed")]
+        removed = [n for n, st in statuses.items() if st == "removed"]
+        manifest = {"run": run_id, "mode": mode, "why": why, "started": self.started.isoformat(),
+                    "tool_version": __version__, "config_hash": hashlib.sha256(
+                        cfg.canonical_json().encode()).hexdigest(),
+                    "policy": {"lookback_partitions": cfg.run.lookback_partitions,
+                               "late_horizon_days": cfg.run.late_horizon_days,
+                               "on_bad_partition": cfg.run.on_bad_partition,
+                               "backfill_late_items": cfg.run.backfill_late_items,
+                               "late_items": "backfilled from their earliest interaction"
+                               if cfg.run.backfill_late_items else "unplaced before they were first seen"},
+                    "inputs": {"items": cfg.items, "interactions": cfg.interactions,
+                               "partitions_seen": len(parts) + len(rejected), "ignored_entries": ignored},
+                    "partitions": statuses, "rejected": rejected,
+                    "items": {k: v for k, v in changes.items() if k != "first_seen"},
+                    "lock_taken_over": self.lock.took_over}
+        if self.lock.took_over:
+            manifest["lock_taken_over"] = self.lock.took_over
+        if not staged_new and not removed and not reg_changed:
+            manifest.update(status="up to date", watermark=state and state.get("watermark"),
+                            generation=state and state.get("generation"))
+            return self._finish(run_id, manifest, state, rejected, commit=False)
+
+        # who and what to re-label
+        watermark_us = max((p.max_ts_us for p in parts.values() if p.max_ts_us is not None), default=None)
+        if watermark_us is None:
+            raise InputError("no interactions accepted in any partition; nothing to label.",
+                             source=cfg.interactions, hint="Check the partitions and the rejected list.")
+        prev_gen = (work / "outputs" / state["generation"]) if (state and mode == "incremental") else None
+        if mode == "incremental":
+            users, start_us = self._affected(parts, staged_new, affected_old, changes, state)
+        else:
+            users, start_us = None, min(p.min_ts_us for p in parts.values() if p.min_ts_us is not None)
+        start_date = _day(start_us) if start_us is not None else None
+        versions = self._versions(tax, register, parts)
+
+        t0 = time.perf_counter()
+        eng = make_engine(cfg.engine)
+        files = [str(work / p.events) for _, p in sorted(parts.items()) if p.rows]
+        ev = eng.read_parquet(files)
+        n_users = None
+        if users is not None:
+            n_users = len(users)
+            ut = eng.table(pa.table({"user_id": users}), "relabel")
+            ev = ev.filter(ev.user_id.isin(ut.user_id))
+        view = taxonomy_view(tax, register)
+        staged = StagedInput(ev, source=cfg.interactions, rows=sum(p.rows for p in parts.values()),
+                             content_hash="job")
+        run = plan_labels(staged, view, cfg.labels, engine=eng,
+                          as_of=pd.Timestamp(watermark_us, unit="us", tz="UTC")).materialize()
+        self._timed("labels", t0)
+        failpoints.hit("after_labels")
+
+        t0 = time.perf_counter()
+        gen_name = f"gen-{seq:06d}"
+        writer = GenerationWriter(work / "outputs" / gen_name, prev_gen,
+                                  pa.array(users, pa.string()) if users is not None else None,
+                                  start_date, versions, tax.version)
+        linked = writer.link_unchanged()
+        t = run.labels
+        t = t.filter(t.ts_us >= (start_us // DAY_US) * DAY_US) if start_us is not None else t
+        t = t.mutate(_date=t.ts.date().cast("string")).order_by("_date")
+        pending, current = [], None
+        for batch in eng.to_batches(t):
+            tb = pa.Table.from_batches([batch])
+            dates = tb.column("_date")
+            for date in pc.unique(dates).to_pylist():
+                piece = tb.filter(pc.equal(dates, date)).drop_columns(["_date", "ts_us"])
+                if date != current and pending:
+                    writer.write_date(current, pa.concat_tables(pending))
+                    pending = []
+                current = date
+                pending.append(piece)
+        if pending:
+            writer.write_date(current, pa.concat_tables(pending))
+        writer.finish_dates()
+        lab = cfg.labels
+        writer.write_people(run.footprints_arrow(), pa.Table.from_pandas(run.history_frame(), preserve_index=False),
+                            lambda tb: age_footprints(tb, watermark_us, lab.min_support, lab.memory_us))
+        self._timed("outputs", t0)
+        failpoints.hit("after_outputs")
+
+        t0 = time.perf_counter()
+        from ..store import publish_store
+        snapshot = publish_store(work / "store", writer.footprints.to_pandas(), view, lab,
+                                 history=writer.people.to_pandas(),
+                                 as_of=pd.Timestamp(watermark_us, unit="us", tz="UTC"),
+                                 shards=cfg.run.store_shards, retain=cfg.run.keep_generations)
+        self._timed("store", t0)
+        failpoints.hit("after_store")
+
+        counts: dict[str, dict[str, int]] = {}
+        for (level, label), n in sorted(writer.counts.items()):
+            counts.setdefault(str(level), {})[label] = n
+        manifest.update(
+            status="committed", generation=gen_name, watermark=pd.Timestamp(
+                watermark_us, unit="us", tz="UTC").isoformat(),
+            relabelled_users="all" if n_users is None else n_users,
+            relabelled_from=start_date, rows_in=int(sum(parts[n].rows for n in staged_new if n in parts)),
+            quarantined=int(sum(parts[n].quarantined for n in staged_new if n in parts)),
+            rows_out=counts, label_rows_written=writer.rows_written,
+            dates_rewritten=writer.dates_written, dates_linked=linked,
+            footprint_rows=writer.footprints.num_rows, users=writer.people.num_rows,
+            versions={"taxonomy": tax.version, "labels_by_date": {
+                d: versions(d) for d in writer.dates_written}},
+            store={"dir": str(work / "store"), "snapshot": snapshot},
+            taxonomy_refresh=self._refresh_due(changes))
+        new_state = {"format": STATE_FORMAT, "run": seq, "last_run": run_id, "generation": gen_name,
+                     "watermark": manifest["watermark"], "watermark_us": watermark_us,
+                     "taxonomy": {"version": tax.version, "dir": f"taxonomy/{tax.version[:16]}"},
+                     "register": self.register_rel, "labels_config": json.loads(lab.canonical_json()),
+                     "input_config": json.loads(cfg.input.canonical_json()), "tool_version": __version__,
+                     "partitions": {n: p.to_json() for n, p in sorted(parts.items())},
+                     "store_snapshot": snapshot}
+        return self._finish(run_id, manifest, new_state, rejected, commit=True)
+
+    def _finish(self, run_id, manifest, state, rejected, commit: bool) -> JobResult:
+        manifest["durations_s"] = self.timings
+        manifest["finished"] = dt.datetime.now(dt.timezone.utc).isoformat()
+        path = self.work / "runs" / run_id / "manifest.json"
+        _write_json(path, manifest)
+        if commit:
+            _write_json(self.work / "state.json", state, point="state")
+            failpoints.hit("after_state")
+            self._clean(state)
+        code = 1 if rejected else 0
+        log.info("run %s %s (exit %d); manifest %s", run_id, manifest["status"], code, path)
+        return JobResult(manifest, path, code)
+
+    # -- decisions ------------------------------------------------------------------------------
+    def _mode(self, state) -> tuple[str, str]:
+        if state is None:
+            return "full", "first run"
+        if self.full_requested:
+            return "full", "requested with --full"
+        if state.get("labels_config") != json.loads(self.cfg.labels.canonical_json()):
+            return "full", "label settings changed since the last run"
+        if state.get("input_config") != json.loads(self.cfg.input.canonical_json()):
+            return "full", "input settings changed since the last run"
+        if state.get("tool_version") != __version__:
+            return "full", f"tool version changed ({state.get('tool_version')} -> {__version__})"
+        if not (self.work / "outputs" / state["generation"]).is_dir():
+            return "full", f"previous output generation {state['generation']} is missing"
+        return "incremental", "new or changed partitions only"
+
+    def _refresh_due(self, changes) -> dict:
+        share, limit = changes["unplaced_share"], self.cfg.run.refresh_unplaced_share
+        due = (changes["placed"] + changes["unplaced"]) > 0 and share > limit
+        out = {"due": bool(due), "new_items_unplaced_share": share, "threshold": limit}
+        if due:
+            log.warning("%.0f%% of new items fell below min_confidence (threshold %.0f%%): a taxonomy "
+                        "refresh is due (run with --rebuild-taxonomy)", 100 * share, 100 * limit)
+        return out
+
+    # -- items ----------------------------------------------------------------------------------
+    def _items(self, state, mode):
+        cfg = self.cfg
+        raw = read_table(Path(cfg.items))
+        category = cfg.run.category_column if cfg.run.taxonomy_from == "categories" else None
+        items, _ = normalize_items(raw, text_columns=cfg.taxonomy.text_columns, source=cfg.items, category=category)
+        hashes = text_hashes(items, cfg.taxonomy.text_columns, category)
+        changes = {"new": 0, "changed": 0, "placed": 0, "unplaced": 0, "unplaced_share": 0.0, "added_rows": 0}
+        if state is None:
+            if category is not None:
+                tax = Taxonomy.from_categories(items, column=category)
+            else:
+                tax = build_taxonomy(items, cfg.taxonomy, embedder=self.embedder, progress=self.progress,
+                                     source=cfg.items)
+            self._save_taxonomy(tax)
+            register = first_register(tax, items, hashes)
+            changes.update(new=int(len(items)), placed=int(tax.item_topics["item_id"].nunique()))
+        else:
+            tax_dir = self.work / state["taxonomy"]["dir"]
+            tax = Taxonomy.load(tax_dir)
+            register = read_register(self.work / state["register"])
+            first_seen = self._first_seen(state, register, items) if cfg.run.backfill_late_items else None
+            register, ch = update_register(register, tax, items, hashes, state["watermark_us"] + 1,
+                                           first_seen, embedder=self.embedder)
+            changes.update(new=len(ch.new), changed=len(ch.changed), placed=ch.placed, unplaced=ch.unplaced,
+                           unplaced_share=ch.unplaced_share,
+                           added_rows=int(len(register) - len(read_register(self.work / state["register"]))),
+                           first_seen=first_seen or {})
+        self.register_rel = self._save_register(register)
+        self.register_added = register if state is None else None
+        return tax, register, changes
+
+    def _first_seen(self, state, register, items) -> dict[str, int]:
+        """Earliest interaction on each item the register has not seen (for backfilling)."""
+        new = sorted(set(items["item_id"]) - set(register["item_id"]))
+        files = [str(self.work / p["events"]) for p in state["partitions"].values() if p["rows"]]
+        if not new or not files:
+            return {}
+        import duckdb
+        con = duckdb.connect()
+        con.register("new_items", pa.table({"item_id": new}))
+        rows = con.execute("SELECT item_id, min(epoch_us(ts)) FROM read_parquet(?) WHERE item_id IN "
+                           "(SELECT item_id FROM new_items) GROUP BY item_id", [files]).fetchall()
+        return {i: int(us) for i, us in rows}
+
+    def _save_taxonomy(self, tax: Taxonomy) -> None:
+        dest = self.work / "taxonomy" / tax.version[:16]
+        if dest.exists():
+            return
+        tmp = dest.with_name(f".{dest.name}.{uuid.uuid4().hex}")
+        tax.save(tmp)
+        os.replace(tmp, dest)
+
+    def _save_register(self, register: pd.DataFrame) -> str:
+        digest = hashlib.sha256(register.to_csv(index=False).encode("utf-8", "surrogatepass")).hexdigest()
+        rel = f"items/register-{digest[:16]}.parquet"
+        if not (self.work / rel).exists():
+            table = pa.Table.from_pandas(register, preserve_index=False).replace_schema_metadata(None)
+            write_table(table, self.work / rel, "write_register")
+        return rel
+
+    # -- partitions -----------------------------------------------------------------------------
+    def _partitions(self, state, mode):
+        cfg, work = self.cfg, self.work
+        found, ignored = discover(Path(cfg.interactions))
+        known = {n: Staged(**p) for n, p in (state or {}).get("partitions", {}).items()}
+        lookback = set(sorted(known)[-cfg.run.lookback_partitions:]) if cfg.run.lookback_partitions else set()
+        forgotten = _tombstones(work / "store")
+        parts, statuses, rejected, affected_old = {}, {}, {}, []
+        for part in found:
+            old = known.get(part.name)
+            if old is not None and mode == "incremental" and part.name not in lookback:
+                if part.stat_key() != old.files:
+                    statuses[part.name] = "changed_outside_lookback"
+                    log.warning("%s changed but is older than the last %d partitions: not re-processed "
+                                "(run with --full to take it in)", part.path, cfg.run.lookback_partitions)
+                else:
+                    statuses[part.name] = "unchanged"
+                parts[part.name] = old
+                continue
+            h = part.content_hash()
+            if old is not None and old.hash == h and (work / old.events).exists():
+                parts[part.name] = dataclasses.replace(old, files=part.stat_key())
+                statuses[part.name] = "unchanged"
+                continue
+            try:
+                parts[part.name] = stage(part, h, work, cfg.input, cfg.run.late_horizon_days, forgotten)
+            except InputError as exc:
+                rejected[part.name] = str(exc)
+                log.error("rejected partition %s: %s", part.path, exc)
+                if cfg.run.on_bad_partition == "stop":
+                    raise RejectedError(f"partition {part.path} was rejected and run.on_bad_partition = 'stop': "
+                                        f"nothing was committed. {exc}") from None
+                if old is not None:  # keep what was accepted before; retried next run
+                    parts[part.name] = old
+                continue
+            statuses[part.name] = "new" if old is None else "changed"
+            if old is not None:
+                affected_old.append(old)
+            log.info("staged partition %s: %d events (%d quarantined)", part.name, parts[part.name].rows,
+                     parts[part.name].quarantined)
+        for name, old in known.items():
+            if name not in parts and name not in rejected and name not in {p.name for p in found}:
+                statuses[name] = "removed"
+                affected_old.append(old)
+                log.warning("partition %s disappeared from %s; its users are re-labelled without it", name,
+                            cfg.interactions)
+        return parts, statuses, rejected, ignored, affected_old
+
+    def _affected(self, parts, staged_new, affected_old, changes, state):
+        """Users to re-label and the earliest time whose labels can change."""
+        files = [str(self.work / parts[n].events) for n in staged_new if parts[n].rows]
+        files += [str(self.work / p.events) for p in affected_old if p.rows and (self.work / p.events).exists()]
+        starts = [parts[n].min_ts_us for n in staged_new if parts[n].min_ts_us is not None]
+        starts += [p.min_ts_us for p in affected_old if p.min_ts_us is not None]
+        users: set[str] = set()
+        import duckdb
+        con = duckdb.connect()
+        if files:
+            users |= {r[0] for r in con.execute("SELECT DISTINCT user_id FROM read_parquet(?)", [files]).fetchall()}
+        first_seen = changes.get("first_seen") or {}
+        if first_seen:
+            all_files = [str(self.work / p.events) for p in parts.values() if p.rows]
+            con.register("late_items", pa.table({"item_id": sorted(first_seen)}))
+            got = con.execute("SELECT DISTINCT user_id FROM read_parquet(?) WHERE item_id IN "
+                              "(SELECT item_id FROM late_items)", [all_files]).fetchall()
+            users |= {r[0] for r in got}
+            starts.append(min(first_seen.values()))
+        if changes["added_rows"]:
+            starts.append(state["watermark_us"] + 1)
+        return sorted(users), (min(starts) if starts else None)
+
+    def _versions(self, tax, register, parts):
+        """labels_version of each output date: the taxonomy, the label settings, the tool, and the
+        inputs those labels can depend on (partitions with events before the date's end, register
+        rows valid before it). Equal for incremental and full runs over the same inputs."""
+        days, reg_hashes = register_hash_by_day(register)
+        head = "\x00".join([tax.version, self.cfg.labels.canonical_json(), __version__])
+        spans = sorted((p.min_ts_us, n, p.hash) for n, p in parts.items() if p.rows and p.min_ts_us is not None)
+
+        @functools.lru_cache(maxsize=None)
+        def version(date: str) -> str:
+            end = _day_start(date) + DAY_US
+            k = int(np.searchsorted(days, end, side="left")) - 1
+            reg = reg_hashes[k] if k >= 0 else "none"
+            inputs = ",".join(f"{n}:{h}" for lo, n, h in sorted(spans, key=lambda s: s[1]) if lo < end)
+            return hashlib.sha256(f"{head}\x00{reg}\x00{inputs}".encode()).hexdigest()
+        return version
+
+    # -- cleaning -------------------------------------------------------------------------------
+    def _clean(self, state) -> None:
+        """Drop generations beyond the retention count and files no state refers to."""
+        keep = self.cfg.run.keep_generations
+        gens = sorted(p.name for p in (self.work / "outputs").iterdir() if p.name.startswith("gen-"))
+        current = state["generation"]
+        for name in gens:
+            if name > current or name in gens[-keep:]:
+                continue
+            shutil.rmtree(self.work / "outputs" / name, ignore_errors=True)
+        referenced = {p["events"] for p in state["partitions"].values()}
+        for folder in ("events", "quarantine"):
+            d = self.work / folder
+            if not d.is_dir():
+                continue
+            for f in d.iterdir():
+                rel = f"events/{f.name}"
+                if rel not in referenced:
+                    f.unlink(missing_ok=True)
+        reg = self.work / "items"
+        for f in reg.glob("register-*.parquet"):
+            if f"items/{f.name}" != state["register"]:
+                f.unlink(missing_ok=True)
+
+
+def _tombstones(store: Path) -> set[str]:
+    from ..store.layout import tombstones
+    return tombstones(store) if store.exists() else set()
+
+
+def current_outputs(work_dir) -> Path:
+    """The folder of the job's committed outputs (labels/, footprints.parquet, users.parquet)."""
+    state = load_state(Path(work_dir))
+    if state is None:
+        raise ArtifactError(f"{work_dir}: no committed run yet (no state.json). Run `labeler run --config ...`.")
+    return Path(work_dir) / "outputs" / state["generation"]
