@@ -1,0 +1,403 @@
+"""The scheduled job (`labeler run`): incremental equals full, late data, items over time, bad
+partitions, the lock, and crash safety at every failpoint.
+
+Data: the invented demo scenario (small size), cut into daily partitions. "Equal" means the
+committed output files (labels by date, footprints, users) are byte-identical.
+"""
+from __future__ import annotations
+
+import datetime as dt
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from labeler import JobConfig, LabelConfig, Taxonomy, label_interactions
+from labeler.errors import EngineError, LockedError, RejectedError
+from labeler.job import FAILPOINTS, RunLock, current_outputs, load_state, run_job
+from labeler.job.failpoints import WRITE_POINTS
+
+
+@pytest.fixture(scope="module")
+def scenario():
+    from labeler.demo import generate_scenario
+    s = generate_scenario(7, n_items=600, n_users=150, weeks=6)
+    ev = s.interactions.copy()
+    ev["date"] = pd.to_datetime(ev["ts"], utc=True).dt.strftime("%Y-%m-%d")
+    return s.items, ev
+
+
+def write_days(ev: pd.DataFrame, folder: Path, dates) -> None:
+    for d in dates:
+        part = folder / f"date={d}"
+        part.mkdir(parents=True, exist_ok=True)
+        ev[ev["date"] == d].drop(columns="date").to_parquet(part / "part-0.parquet", index=False)
+
+
+def make_config(root: Path, work: str = "work", **run) -> JobConfig:
+    labels = run.pop("labels", {})
+    return JobConfig(items=str(root / "items.parquet"), interactions=str(root / "interactions"),
+                     work_dir=str(root / work), labels=labels, engine={"memory_limit": "1GB", "threads": 2},
+                     run={"taxonomy_from": "categories", **run})
+
+
+def committed(work: Path) -> dict[str, bytes]:
+    gen = current_outputs(work)
+    return {str(p.relative_to(gen)): p.read_bytes() for p in sorted(gen.rglob("*.parquet"))}
+
+
+def assert_same_outputs(a: Path, b: Path) -> None:
+    x, y = committed(a), committed(b)
+    assert sorted(x) == sorted(y)
+    differ = [k for k in x if x[k] != y[k]]
+    assert not differ, f"files differ: {differ[:5]}"
+
+
+def setup_root(tmp_path: Path, scenario, upto: int) -> tuple[Path, list[str]]:
+    items, ev = scenario
+    items.to_parquet(tmp_path / "items.parquet", index=False)
+    dates = sorted(ev["date"].unique())
+    write_days(ev, tmp_path / "interactions", dates[:upto])
+    return tmp_path, dates
+
+
+CONFIGS = {
+    "defaults": {},
+    "support2_memory7": {"min_support": 2, "memory_days": 7},
+    "engaged_only": {"footprint_from": "engaged", "engaged_min": 0.5},
+    "any_new_warmup3": {"multi_topic": "any_new", "warmup": 3},
+    "label_from_boost_discovery": {"label_from": "2026-03-20T00:00:00Z", "boost_on": "discovery"},
+    "memory3": {"memory_days": 3},
+}
+
+
+@pytest.mark.parametrize("name", sorted(CONFIGS))
+def test_incremental_runs_equal_one_full_run(tmp_path, scenario, name):
+    """Three incremental runs write the same bytes as one full run over the same partitions."""
+    root, dates = setup_root(tmp_path, scenario, 20)
+    _, ev = scenario
+    cfg = make_config(root, labels=CONFIGS[name])
+    first = run_job(cfg).manifest
+    assert first["mode"] == "full" and first["why"] == "first run"
+    write_days(ev, root / "interactions", dates[20:30])
+    second = run_job(cfg).manifest
+    assert second["mode"] == "incremental" and second["status"] == "committed"
+    assert second["dates_linked"] > 0 and second["relabelled_users"] != "all"
+    write_days(ev, root / "interactions", dates[30:])
+    run_job(cfg)
+    full = run_job(make_config(root, work="full", labels=CONFIGS[name])).manifest
+    assert full["mode"] == "full"
+    assert_same_outputs(root / "work", root / "full")
+
+
+def test_job_labels_are_the_library_labels(tmp_path, scenario):
+    """After incremental runs the job's labels are, row for row, what label_interactions gives on
+    the whole log with the same taxonomy (the job adds only the per-date labels_version)."""
+    import pyarrow.parquet as pq
+    root, dates = setup_root(tmp_path, scenario, 25)
+    items, ev = scenario
+    cfg = make_config(root)
+    run_job(cfg)
+    write_days(ev, root / "interactions", dates[25:])
+    run_job(cfg)
+    got = pq.read_table(current_outputs(root / "work") / "labels").to_pandas()
+    got = got.sort_values(["user_id", "ts", "event_id", "item_id", "level"], na_position="last").reset_index(drop=True)
+    want = label_interactions(ev.drop(columns="date"), Taxonomy.from_categories(items), LabelConfig())
+    cols = ["user_id", "item_id", "event_id", "level", "topic_id", "label", "reward_multiplier", "history_len",
+            "known_topics"]
+    pd.testing.assert_frame_equal(got[cols].astype(object), want[cols].astype(object), check_dtype=False)
+    assert (pd.to_datetime(got["ts"]) == pd.to_datetime(want["ts"])).all()
+
+
+def test_nothing_new_is_a_no_op(tmp_path, scenario):
+    root, _ = setup_root(tmp_path, scenario, 10)
+    cfg = make_config(root)
+    run_job(cfg)
+    before = committed(root / "work")
+    again = run_job(cfg)
+    assert again.manifest["status"] == "up to date" and again.exit_code == 0
+    assert committed(root / "work") == before
+
+
+def test_changed_partition_in_lookback_relabels_its_users_from_the_change(tmp_path, scenario):
+    """A partition that changes inside the lookback is re-staged; its users are re-labelled from
+    its date on, and the result equals a full run over the changed data."""
+    root, dates = setup_root(tmp_path, scenario, 30)
+    _, ev = scenario
+    cfg = make_config(root, lookback_partitions=3)
+    run_job(cfg)
+    day = dates[28]
+    f = root / "interactions" / f"date={day}" / "part-0.parquet"
+    part = pd.read_parquet(f)
+    late = part.iloc[[0]].copy()
+    late["item_id"] = ev["item_id"].iloc[-1]
+    late["event_id"] = "late-1"
+    part = pd.concat([part.iloc[2:], late], ignore_index=True)  # two rows gone, one late row added
+    part.to_parquet(f, index=False)
+    m = run_job(cfg).manifest
+    assert m["partitions"][day] == "changed"
+    assert m["relabelled_from"] == day
+    assert all(d >= day for d in m["dates_rewritten"])
+    run_job(make_config(root, work="full"))
+    assert_same_outputs(root / "work", root / "full")
+
+
+def test_change_outside_lookback_is_reported_not_reprocessed(tmp_path, scenario):
+    root, dates = setup_root(tmp_path, scenario, 20)
+    cfg = make_config(root, lookback_partitions=2)
+    run_job(cfg)
+    before = committed(root / "work")
+    f = root / "interactions" / f"date={dates[3]}" / "part-0.parquet"
+    pd.read_parquet(f).iloc[1:].to_parquet(f, index=False)
+    m = run_job(cfg).manifest
+    assert m["partitions"][dates[3]] == "changed_outside_lookback"
+    assert m["status"] == "up to date" and committed(root / "work") == before
+    m = run_job(cfg, full=True).manifest  # --full takes it in
+    assert m["mode"] == "full" and m["partitions"][dates[3]] == "changed"
+
+
+def test_late_events_in_a_new_partition_and_the_horizon(tmp_path, scenario):
+    """A new partition may hold events from earlier days: within the horizon they are labelled on
+    their own date (their users re-labelled from there); beyond it they are quarantined."""
+    root, dates = setup_root(tmp_path, scenario, 30)
+    _, ev = scenario
+    cfg = make_config(root, late_horizon_days=5)
+    run_job(cfg)
+    new_day = dates[30]
+    write_days(ev, root / "interactions", [new_day])
+    f = root / "interactions" / f"date={new_day}" / "part-0.parquet"
+    part = pd.read_parquet(f)
+    start = pd.Timestamp(new_day, tz="UTC")
+    within = part.iloc[[0]].assign(ts=start - pd.Timedelta(days=3), event_id="within")
+    beyond = part.iloc[[1]].assign(ts=start - pd.Timedelta(days=12), event_id="beyond")
+    pd.concat([part, within, beyond], ignore_index=True).to_parquet(f, index=False)
+    m = run_job(cfg).manifest
+    assert m["quarantined"] == 1
+    assert m["relabelled_from"] == (start - pd.Timedelta(days=3)).strftime("%Y-%m-%d")
+    quarantine = pd.read_parquet(next((root / "work" / "quarantine").glob(f"{new_day}-*.parquet")))
+    assert quarantine["event_id"].tolist() == ["beyond"]
+    import pyarrow.parquet as pq
+    labels = pq.read_table(current_outputs(root / "work") / "labels").to_pandas()
+    assert "within" in set(labels["event_id"]) and "beyond" not in set(labels["event_id"])
+    run_job(make_config(root, work="full", late_horizon_days=5))
+    assert_same_outputs(root / "work", root / "full")
+
+
+def _label_rows(work: Path, event_ids) -> pd.DataFrame:
+    import pyarrow.parquet as pq
+    labels = pq.read_table(current_outputs(work) / "labels").to_pandas()
+    return labels[labels["event_id"].isin(event_ids)].sort_values("event_id")
+
+
+@pytest.mark.parametrize("backfill", [False, True])
+def test_items_first_seen_after_their_interactions(tmp_path, scenario, backfill):
+    """An item missing from the snapshot leaves its interactions unplaced; when it appears, later
+    interactions use its topic, and earlier ones too only with backfill_late_items."""
+    root, dates = setup_root(tmp_path, scenario, 20)
+    items, ev = scenario
+    extra = items.iloc[[0]].assign(item_id="late-item")
+    f = root / "interactions" / f"date={dates[5]}" / "part-0.parquet"
+    part = pd.read_parquet(f)
+    early = part.iloc[[0]].assign(item_id="late-item", event_id="early")
+    pd.concat([part, early], ignore_index=True).to_parquet(f, index=False)
+    cfg = make_config(root, backfill_late_items=backfill, lookback_partitions=1)
+    run_job(cfg)
+    assert _label_rows(root / "work", ["early"])["label"].eq("unplaced").all()
+    pd.concat([items, extra], ignore_index=True).to_parquet(root / "items.parquet", index=False)
+    write_days(ev, root / "interactions", [dates[20]])
+    g = root / "interactions" / f"date={dates[20]}" / "part-0.parquet"
+    part = pd.read_parquet(g)
+    later = part.iloc[[0]].assign(item_id="late-item", event_id="later")
+    pd.concat([part, later], ignore_index=True).to_parquet(g, index=False)
+    m = run_job(cfg).manifest
+    assert m["items"]["new"] == 1
+    assert m["policy"]["backfill_late_items"] is backfill
+    rows = _label_rows(root / "work", ["early", "later"])
+    assert rows.loc[rows["event_id"] == "later", "label"].ne("unplaced").all()
+    early_labels = rows.loc[rows["event_id"] == "early", "label"]
+    assert early_labels.ne("unplaced").all() if backfill else early_labels.eq("unplaced").all()
+    run_job(cfg, full=True)  # a full recompute keeps when the item was first seen
+    assert _label_rows(root / "work", ["early", "later"])["label"].tolist() == rows["label"].tolist()
+
+
+def test_changed_item_text_takes_effect_from_the_change(tmp_path, scenario):
+    """An item whose text (here: category) changes keeps its old topic for interactions up to the
+    watermark of the run that saw the change, and gets the new one after."""
+    import pyarrow.parquet as pq
+    root, dates = setup_root(tmp_path, scenario, 20)
+    items, ev = scenario
+    cfg = make_config(root)
+    run_job(cfg)
+    cut = pd.Timestamp(load_state(root / "work")["watermark"])
+    both = set(ev.loc[ev["date"] < dates[20], "item_id"]) & set(ev.loc[ev["date"] >= dates[20], "item_id"])
+    item = sorted(both)[0]
+    old_cat = items.loc[items["item_id"] == item, "category"].iloc[0]
+    new_cat = next(c for c in sorted(items["category"].dropna().unique()) if c != old_cat and "|" not in c)
+    changed = items.copy()
+    changed.loc[changed["item_id"] == item, "category"] = new_cat
+    changed.to_parquet(root / "items.parquet", index=False)
+    write_days(ev, root / "interactions", dates[20:])
+    m = run_job(cfg).manifest
+    assert m["items"]["changed"] == 1
+    labels = pq.read_table(current_outputs(root / "work") / "labels").to_pandas()
+    on_item = labels[labels["item_id"] == item]
+    def topics(its):
+        it = Taxonomy.from_categories(its).item_topics
+        return set(it.loc[it["item_id"] == item, "topic_id"])
+    ts = pd.to_datetime(on_item["ts"])
+    assert set(on_item.loc[ts <= cut, "topic_id"]) <= topics(items)
+    assert set(on_item.loc[ts > cut, "topic_id"]) == topics(changed)
+    before = committed(root / "work")
+    run_job(cfg, full=True)  # a full recompute keeps the as-of assignments: same bytes
+    assert committed(root / "work") == before
+
+
+def _corrupt(path: Path) -> None:
+    data = path.read_bytes()
+    path.write_bytes(data[: len(data) // 2])
+
+
+def test_bad_partition_is_skipped_by_path_and_retried(tmp_path, scenario):
+    root, dates = setup_root(tmp_path, scenario, 12)
+    bad = root / "interactions" / f"date={dates[7]}" / "part-0.parquet"
+    good_bytes = bad.read_bytes()
+    _corrupt(bad)
+    cfg = make_config(root)
+    res = run_job(cfg)
+    assert res.exit_code == 1 and res.manifest["status"] == "committed"
+    assert str(bad) in res.manifest["rejected"][dates[7]]
+    assert dates[7] not in load_state(root / "work")["partitions"]
+    bad.write_bytes(good_bytes)
+    res = run_job(cfg)
+    assert res.exit_code == 0 and res.manifest["partitions"][dates[7]] == "new"
+    run_job(make_config(root, work="full"))
+    assert_same_outputs(root / "work", root / "full")
+
+
+def test_bad_partition_stops_the_run_when_configured(tmp_path, scenario):
+    root, dates = setup_root(tmp_path, scenario, 12)
+    cfg = make_config(root, on_bad_partition="stop")
+    run_job(cfg)
+    state = (root / "work" / "state.json").read_bytes()
+    write_days(scenario[1], root / "interactions", dates[12:14])
+    _corrupt(root / "interactions" / f"date={dates[13]}" / "part-0.parquet")
+    with pytest.raises(RejectedError, match=dates[13]):
+        run_job(cfg)
+    assert (root / "work" / "state.json").read_bytes() == state
+
+
+def test_a_second_run_is_refused_while_the_lock_is_held(tmp_path, scenario, cli):
+    root, _ = setup_root(tmp_path, scenario, 5)
+    toml = _toml(root)
+    holder = subprocess.Popen([sys.executable, "-c", (
+        "import sys, time; from labeler.job import RunLock\n"
+        f"with RunLock({str(root / 'work')!r}):\n    print('held', flush=True); time.sleep(60)")],
+        stdout=subprocess.PIPE, text=True)
+    try:
+        assert holder.stdout.readline().strip() == "held"
+        code, out, err = cli("run", "--config", toml, "-q")
+        assert code == LockedError.exit_code == 3
+        assert "another run holds the lock" in err and f"pid {holder.pid}" in err
+    finally:
+        holder.kill()
+        holder.wait()
+    code, out, err = cli("run", "--config", toml, "-q")  # the holder died: its lock is taken over
+    assert code == 0, err
+    m = json.loads(next((root / "work" / "runs").glob("*/manifest.json")).read_text())
+    assert m["lock_taken_over"]["pid"] == holder.pid
+
+
+def _toml(root: Path, work: str = "work") -> Path:
+    p = root / f"{work}.toml"
+    p.write_text(f'items = "items.parquet"\ninteractions = "interactions"\nwork_dir = "{work}"\n'
+                 '[run]\ntaxonomy_from = "categories"\n[engine]\nmemory_limit = "1GB"\nthreads = 2\n')
+    return p
+
+
+def _run_cli(toml: Path, env_extra: dict | None = None) -> subprocess.CompletedProcess:
+    env = {**os.environ, **(env_extra or {})}
+    return subprocess.run([sys.executable, "-c", "import sys; from labeler.cli import main; "
+                           f"sys.exit(main(['run', '--config', {str(toml)!r}, '-q']))"],
+                          env=env, capture_output=True, text=True, timeout=300)
+
+
+@pytest.fixture(scope="module")
+def crash_reference(tmp_path_factory, scenario):
+    """A clean two-run history every crash test must end up equal to."""
+    root = tmp_path_factory.mktemp("clean")
+    root, dates = setup_root(root, scenario, 25)
+    assert _run_cli(_toml(root)).returncode == 0
+    write_days(scenario[1], root / "interactions", dates[25:])
+    assert _run_cli(_toml(root)).returncode == 0
+    return root, dates
+
+
+@pytest.mark.parametrize("point", FAILPOINTS)
+def test_killed_at_any_point_a_rerun_gives_the_clean_outputs(tmp_path, scenario, crash_reference, point):
+    """SIGKILL at each failpoint of the second run; re-running gives the clean run's bytes."""
+    ref, dates = crash_reference
+    root, _ = setup_root(tmp_path, scenario, 25)
+    toml = _toml(root)
+    assert _run_cli(toml).returncode == 0
+    write_days(scenario[1], root / "interactions", dates[25:])
+    killed = _run_cli(toml, {"LABELER_FAILPOINT": point})
+    assert killed.returncode == -9, killed.stderr[-2000:]
+    again = _run_cli(toml)
+    assert again.returncode == 0, again.stderr[-2000:]
+    assert_same_outputs(root / "work", ref / "work")
+    state, ref_state = load_state(root / "work"), load_state(ref / "work")
+    for key in ("watermark", "partitions", "register", "taxonomy", "generation"):
+        if key == "partitions":
+            assert {k: {**v, "files": None} for k, v in state[key].items()} == \
+                {k: {**v, "files": None} for k, v in ref_state[key].items()}
+        else:
+            assert state[key] == ref_state[key], key
+
+
+@pytest.mark.parametrize("point", WRITE_POINTS)
+def test_disk_full_leaves_the_previous_state_intact(tmp_path, scenario, monkeypatch, point):
+    root, dates = setup_root(tmp_path, scenario, 15)
+    cfg = make_config(root)
+    run_job(cfg)
+    state = (root / "work" / "state.json").read_bytes()
+    store_current = (root / "work" / "store" / "CURRENT").read_bytes()
+    before = committed(root / "work")
+    write_days(scenario[1], root / "interactions", dates[15:20])
+    monkeypatch.setenv("LABELER_FAILPOINT", f"enospc@{point}")
+    with pytest.raises(EngineError, match="disk full"):
+        run_job(cfg)
+    assert (root / "work" / "state.json").read_bytes() == state
+    assert committed(root / "work") == before
+    if point != "write_state":  # the store is published just before the state
+        assert (root / "work" / "store" / "CURRENT").read_bytes() == store_current
+    monkeypatch.delenv("LABELER_FAILPOINT")
+    assert run_job(cfg).manifest["status"] == "committed"
+    run_job(make_config(root, work="full"))
+    assert_same_outputs(root / "work", root / "full")
+
+
+def test_cli_run_prints_a_summary_and_logs_json_lines(tmp_path, scenario, cli):
+    root, _ = setup_root(tmp_path, scenario, 8)
+    code, out, err = cli("run", "--config", _toml(root), "--log-format", "json")
+    assert code == 0, err
+    assert "committed (full: first run)" in out and "manifest:" in out
+    lines = [json.loads(line) for line in err.splitlines() if line.startswith("{")]
+    assert lines and all({"time", "level", "logger", "message"} <= set(r) for r in lines)
+
+
+def test_cli_run_needs_a_config(cli):
+    code, _, err = cli("run")
+    assert code == 2 and "--config" in err
+
+
+def test_demo_job_config_points_at_the_demo_output(fixtures):
+    from labeler import load_job_config
+    cfg = load_job_config(fixtures / "demo-job.toml", environ={})
+    root = fixtures.parent
+    assert Path(cfg.items) == (root / "demo-out" / "data" / "items.parquet").resolve()
+    assert Path(cfg.interactions) == (root / "demo-out" / "data" / "daily").resolve()
+    assert Path(cfg.work_dir).is_relative_to((root / "demo-out").resolve())
