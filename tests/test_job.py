@@ -6,7 +6,6 @@ committed output files (labels by date, footprints, users) are byte-identical.
 """
 from __future__ import annotations
 
-import datetime as dt
 import json
 import os
 import subprocess
@@ -18,7 +17,7 @@ import pytest
 
 from labeler import JobConfig, LabelConfig, Taxonomy, label_interactions
 from labeler.errors import EngineError, LockedError, RejectedError
-from labeler.job import FAILPOINTS, RunLock, current_outputs, load_state, run_job
+from labeler.job import FAILPOINTS, current_outputs, load_state, run_job
 from labeler.job.failpoints import WRITE_POINTS
 
 
