@@ -236,8 +236,9 @@ def run_demo(out_dir, seed: int = 7, embedder=None, progress: bool = True, small
     candidates = fine_items["item_id"].head(5).tolist()  # one item from each of five fine topics
     lookup = {"user_id": busiest, "known_fine_topics": [t.name for t in fp.known][:5],
               "candidates": {c.item_id: c.label for c in store.classify(busiest, candidates, level=1)}}
+    job = _run_job_twice(out, paths, scenario, cfg, embedder, progress, labels)
     summary = {
-        "seed": seed, "data": paths,
+        "seed": seed, "data": paths, "job": job,
         "store": {"dir": str(out / "store"), "snapshot": snapshot, "example_lookup": lookup},
         "items": int(len(scenario.items)), "interactions": int(len(scenario.interactions)),
         "users": int(scenario.interactions["user_id"].nunique()),
@@ -254,3 +255,49 @@ def run_demo(out_dir, seed: int = 7, embedder=None, progress: bool = True, small
     }
     (out / "demo-summary.json").write_text(json.dumps(summary, indent=2, sort_keys=True) + "\n")
     return summary
+
+
+def write_daily(interactions, folder, since=None, until=None) -> list[str]:
+    """Write interactions as one Parquet partition per UTC date (``date=YYYY-MM-DD/``), from
+    ``since`` (inclusive) up to ``until`` (exclusive); returns the dates written."""
+    from pathlib import Path
+    import pandas as pd
+    day = pd.to_datetime(interactions["ts"], utc=True).dt.strftime("%Y-%m-%d")
+    written = []
+    for d in sorted(day.unique()):
+        if (until is not None and d >= until) or (since is not None and d < since):
+            continue
+        part = Path(folder) / f"date={d}"
+        part.mkdir(parents=True, exist_ok=True)
+        interactions[day == d].to_parquet(part / "part-0.parquet", index=False)
+        written.append(d)
+    return written
+
+
+def _run_job_twice(out, paths, scenario, label_cfg, embedder, progress, labels) -> dict:
+    """The scheduled job on daily partitions: a first run on all but the last week, then the
+    incremental run the next week would bring; its labels must be the batch labels."""
+    import pandas as pd
+    import pyarrow.parquet as pq
+
+    from .config import JobConfig
+    from .job import current_outputs, run_job
+    daily = out / "data" / "daily"
+    last = pd.to_datetime(scenario.interactions["ts"], utc=True).max().normalize() - pd.Timedelta(days=6)
+    cut = last.strftime("%Y-%m-%d")
+    write_daily(scenario.interactions, daily, until=cut)
+    cfg = JobConfig(items=paths["items"], interactions=str(daily), work_dir=str(out / "job"),
+                    taxonomy={"embedding_cache": str(out / "cache" / "embeddings")}, labels=label_cfg)
+    first = run_job(cfg, embedder=embedder, progress=progress).manifest
+    write_daily(scenario.interactions, daily, since=cut)
+    second = run_job(cfg, embedder=embedder, progress=progress).manifest
+    got = pq.read_table(current_outputs(out / "job") / "labels").to_pandas()
+    keys = ["user_id", "ts", "event_id", "item_id", "level"]
+    cols = keys + ["topic_id", "label", "shaped_reward", "history_len", "known_topics"]
+    a = got[cols].sort_values(keys, na_position="last").reset_index(drop=True).astype(object)
+    b = labels[cols].sort_values(keys, na_position="last").reset_index(drop=True).astype(object)
+    same = len(a) == len(b) and bool((a.fillna("-") == b.fillna("-")).all().all())
+    return {"work_dir": str(out / "job"), "runs": [
+        {k: m.get(k) for k in ("run", "mode", "why", "relabelled_users", "relabelled_from",
+                               "label_rows_written", "dates_linked", "durations_s")} for m in (first, second)],
+        "labels_equal_batch_labels": same}

@@ -7,7 +7,7 @@ import pytest
 
 from labeler.cli import build_parser
 
-VERBS = [["demo"], ["taxonomy"], ["taxonomy", "build"], ["taxonomy", "assign"], ["label"]]
+VERBS = [["demo"], ["taxonomy"], ["taxonomy", "build"], ["taxonomy", "assign"], ["label"], ["run"]]
 
 
 def test_top_level_help_lists_every_verb(cli):
@@ -102,6 +102,9 @@ def test_demo_small_runs_every_stage(cli, tmp_path):
     code, out, err = cli("demo", "--out", tmp_path / "d", "--small", "--embedder", "hashing", "-q")
     assert code == 0, err
     for p in ("data/items.parquet", "data/interactions.parquet", "data/truth_events.parquet",
-              "taxonomy/manifest.json", "labels/summary.json", "demo-summary.json"):
+              "taxonomy/manifest.json", "labels/summary.json", "demo-summary.json", "job/state.json"):
         assert (tmp_path / "d" / p).exists(), p
     assert "labelled new_interest at level 1" in out
+    job = json.loads((tmp_path / "d" / "demo-summary.json").read_text())["job"]
+    assert [r["mode"] for r in job["runs"]] == ["full", "incremental"]
+    assert job["labels_equal_batch_labels"] is True

@@ -39,5 +39,12 @@ def run(args) -> int:
     print(f"store snapshot {st['snapshot']} -> {st['dir']}; e.g. `labeler lookup --store {st['dir']} "
           f"{ex['user_id']} --item {next(iter(ex['candidates']))}`: "
           + ", ".join(f"{i} {lab}" for i, lab in ex["candidates"].items()))
+    job = s["job"]
+    r1, r2 = job["runs"]
+    print(f"scheduled job -> {job['work_dir']}: {r1['run']} {r1['mode']} ({r1['label_rows_written']} rows), then "
+          f"{r2['run']} {r2['mode']}: re-labelled {r2['relabelled_users']} users from {r2['relabelled_from']}, "
+          f"{r2['dates_linked']} dates kept as they were; labels equal the batch labels: "
+          f"{'yes' if job['labels_equal_batch_labels'] else 'NO'}")
+    print(f"  next: `labeler run --config fixtures/demo-job.toml` runs the same job from a TOML file")
     print(f"outputs: {lab['dir']}/ and {args.out}/demo-summary.json")
     return 0

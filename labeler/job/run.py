@@ -378,13 +378,15 @@ class _Run:
         for part in found:
             old = known.get(part.name)
             if old is not None and mode == "incremental" and part.name not in lookback:
-                if part.stat_key() != old.files:
-                    statuses[part.name] = "changed_outside_lookback"
-                    log.warning("%s changed but is older than the last %d partitions: not re-processed "
-                                "(run with --full to take it in)", part.path, cfg.run.lookback_partitions)
-                else:
-                    statuses[part.name] = "unchanged"
+                statuses[part.name] = "unchanged"
                 parts[part.name] = old
+                if part.stat_key() != old.files:  # touched: hashed to tell a real change
+                    if part.content_hash() != old.hash:
+                        statuses[part.name] = "changed_outside_lookback"
+                        log.warning("%s changed but is older than the last %d partitions: not re-processed "
+                                    "(run with --full to take it in)", part.path, cfg.run.lookback_partitions)
+                    else:
+                        parts[part.name] = dataclasses.replace(old, files=part.stat_key())
                 continue
             h = part.content_hash()
             if old is not None and old.hash == h and (work / old.events).exists():
