@@ -66,8 +66,8 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
     tmp = root / "snapshots" / f".{name}.tmp"
     tmp.mkdir()
     _write_items(tmp / "items.sqlite", taxonomy)
-    fp["_shard"] = [shard_of(u, shards) for u in fp["user_id"]]
     users["_shard"] = [shard_of(u, shards) for u in users["user_id"]]
+    fp["_shard"] = fp["user_id"].map(pd.Series(users["_shard"].to_numpy(), index=users["user_id"].to_numpy()))
     shard_info, to_write = {}, []
     by_shard_fp, by_shard_users = dict(tuple(fp.groupby("_shard"))), dict(tuple(users.groupby("_shard")))
     for k in range(shards):
@@ -110,11 +110,27 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
     return name
 
 
+def _recent_text(values: pd.Series) -> list[str]:
+    """The last qualifying times as JSON arrays ("[1, 2]"), built column-wise."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+    arr = pa.array([None if v is None else sorted(int(x) for x in v) for v in values], pa.list_(pa.int64()))
+    text = pc.binary_join(pc.cast(arr, pa.list_(pa.string())), ", ")
+    return pc.binary_join_element_wise("[", pc.fill_null(text, ""), "]", "").to_pylist()
+
+
+def _us_list(values) -> list:
+    """Timestamps as int microseconds, None for missing, column-wise."""
+    ts = pd.to_datetime(pd.Series(values), utc=True)
+    us = ts.astype("datetime64[us, UTC]").astype("int64").to_numpy()
+    return np.where(ts.isna().to_numpy(), None, us).tolist()
+
+
 def _shard_digest(fp: pd.DataFrame, users: pd.DataFrame) -> str:
     """Order-independent content hash of one shard's rows (sum of pandas' 64-bit row hashes)."""
     cols = [c for c in ("user_id", "level", "topic_id", "interactions", "engaged_interactions", "known",
                         "first_ts", "last_ts", "known_since") if c in fp.columns]
-    parts = [fp[cols], fp["recent_us"].map(lambda v: ",".join(map(str, sorted(v))) if v is not None else "")]
+    parts = [fp[cols], pd.Series(_recent_text(fp["recent_us"]), index=fp.index, name="recent")]
     rows = pd.util.hash_pandas_object(pd.concat(parts, axis=1), index=False).to_numpy(np.uint64)
     urows = pd.util.hash_pandas_object(users[["user_id", "history_len"]], index=False).to_numpy(np.uint64)
     total = (int(rows.sum(dtype=np.uint64)), int(urows.sum(dtype=np.uint64)), len(rows), len(urows))
@@ -136,9 +152,9 @@ def _write_shard(path: Path, fp: pd.DataFrame, users: pd.DataFrame) -> None:
                fp["interactions"].astype(int).tolist(),
                fp.get("engaged_interactions", fp["interactions"]).astype(int).tolist(),
                fp["known"].astype(bool).astype(int).tolist(),
-               [to_us(v) for v in fp.get("first_ts", fp["last_ts"])], [to_us(v) for v in fp["last_ts"]],
-               [to_us(v) for v in fp.get("known_since", pd.Series([None] * len(fp)))],
-               [json.dumps(sorted(int(x) for x in v)) if v is not None else "[]" for v in fp["recent_us"]])
+               _us_list(fp.get("first_ts", fp["last_ts"])), _us_list(fp["last_ts"]),
+               _us_list(fp.get("known_since", pd.Series([None] * len(fp), dtype="datetime64[us, UTC]"))),
+               _recent_text(fp["recent_us"]))
     con.executemany("INSERT INTO topics VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)", rows)
     con.commit()
     con.close()
