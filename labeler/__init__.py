@@ -9,11 +9,14 @@ __version__ = "0.1.0"
 from .config import EngineConfig, GateConfig, InputConfig, JobConfig, LabelConfig, TaxonomyConfig, \
     load_job_config
 from .errors import ArtifactError, ConfigError, InputError, LabelerError, ModelNotFoundError
+from .job import run_job
 from .labelling import build_footprints, label_interactions, plan_labels
+from .rollout import RolloutResult, check_rollout
 from .store import Classification, Footprint, Store, TopicState, forget_users, open_store, publish_store
 from .taxonomy import Taxonomy, build_taxonomy
 
 __all__ = ["ArtifactError", "ConfigError", "EngineConfig", "GateConfig", "InputConfig", "InputError",
            "JobConfig", "LabelConfig", "LabelerError", "ModelNotFoundError", "Taxonomy", "TaxonomyConfig",
            "build_footprints", "build_taxonomy", "label_interactions", "load_job_config", "plan_labels",
-           "Classification", "Footprint", "Store", "TopicState", "forget_users", "open_store", "publish_store"]
+           "Classification", "Footprint", "Store", "TopicState", "forget_users", "open_store", "publish_store",
+           "RolloutResult", "check_rollout", "run_job"]

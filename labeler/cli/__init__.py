@@ -10,9 +10,9 @@ import logging
 import sys
 
 from ..errors import LabelerError
-from . import _demo, _label, _run, _store, _taxonomy
+from . import _demo, _label, _rollout, _run, _store, _taxonomy
 
-VERBS = (_demo, _taxonomy, _label, _run, _store)
+VERBS = (_demo, _taxonomy, _label, _run, _store, _rollout)
 
 
 def build_parser() -> argparse.ArgumentParser:

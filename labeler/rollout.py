@@ -1,0 +1,222 @@
+"""Checking a taxonomy change before rollout: what moves, and a gate that fails when too much does.
+
+``check_rollout(current, candidate, interactions)`` compares two taxonomies on
+
+- assignment agreement per level on the items either places (each item's primary topic; an
+  item one side leaves unplaced counts in an "(unplaced)" group): ARI, AMI, NMI (scikit-learn),
+  the share of items whose topic id changed, items only one side places;
+- a topic map from the contingency table of item memberships (multi-label items count in each
+  of their topics). With r = share of a current topic's items that land in a candidate topic and
+  s = share of that candidate topic's items that come from it: a current topic is **split** when
+  two or more candidate topics draw s >= 0.5 from it (it being their main source) and together
+  take r >= 0.5 of it;
+  **merged** when it puts r >= 0.5 into a candidate topic that also takes r >= 0.5 of another
+  current topic; **kept** (same name) or **renamed** when r >= 0.5 and s >= 0.5 with one
+  candidate topic; otherwise **retired**. A candidate topic is **continuing** when some current
+  topic maps to it, else **new**;
+- label impact on real interactions: labels under both taxonomies with the same LabelConfig,
+  flips in each direction, new-interest and discovery rates, total shaped reward, footprint size;
+- the candidate's own quality: topic sizes and unplaced share;
+
+and applies the thresholds of :class:`GateConfig`.
+"""
+from __future__ import annotations
+
+import dataclasses
+import json
+import os
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .config import GateConfig, LabelConfig
+from .intake import rank_item_topics
+
+UNPLACED = "(unplaced)"
+KEEP, PART = 0.5, 0.2
+
+
+@dataclasses.dataclass
+class RolloutResult:
+    summary: dict[str, Any]
+    topic_map: pd.DataFrame
+    flips: pd.DataFrame
+
+    @property
+    def passed(self) -> bool:
+        return self.summary["gate"]["passed"]
+
+    def write(self, out_dir: str | os.PathLike) -> Path:
+        out = Path(out_dir)
+        out.mkdir(parents=True, exist_ok=True)
+        self.topic_map.to_csv(out / "topic_map.csv", index=False)
+        self.flips.to_csv(out / "label_flips.csv", index=False)
+        tmp = out / ".summary.json.tmp"
+        tmp.write_text(json.dumps(self.summary, indent=2, sort_keys=True, default=str) + "\n")
+        os.replace(tmp, out / "summary.json")
+        return out
+
+
+def _primary(tax, level: int) -> pd.Series:
+    it = rank_item_topics(tax.item_topics[tax.item_topics["level"] == level])
+    # the latest assignment of each item (rows without valid_from are all "forever")
+    it = it[it["valid_from_us"] == it.groupby("item_id")["valid_from_us"].transform("max")]
+    it = it[(it["pos"] == 0) & it["topic_id"].notna()]
+    return it.set_index("item_id")["topic_id"]
+
+
+def agreement(current, candidate, level: int) -> dict[str, Any]:
+    """ARI, AMI, NMI and changed share on the items either taxonomy places at ``level``."""
+    from sklearn.metrics import adjusted_mutual_info_score, adjusted_rand_score, normalized_mutual_info_score
+    a, b = _primary(current, level), _primary(candidate, level)
+    items = a.index.union(b.index)
+    x = a.reindex(items).fillna(UNPLACED).to_numpy()
+    y = b.reindex(items).fillna(UNPLACED).to_numpy()
+    return {"items": int(len(items)), "ari": float(adjusted_rand_score(x, y)),
+            "ami": float(adjusted_mutual_info_score(x, y)), "nmi": float(normalized_mutual_info_score(x, y)),
+            "changed_share": float(np.mean(x != y)) if len(items) else 0.0,
+            "only_current": int(len(a.index.difference(b.index))),
+            "only_candidate": int(len(b.index.difference(a.index)))}
+
+
+def topic_map(current, candidate, level: int) -> pd.DataFrame:
+    """One row per current topic (status kept/renamed/split/merged/retired and its targets) and per
+    new candidate topic (status new), from item memberships (see the module docstring)."""
+    def members(tax):
+        it = tax.item_topics[(tax.item_topics["level"] == level) & tax.item_topics["topic_id"].notna()]
+        return it[["item_id", "topic_id"]].drop_duplicates()
+    a, b = members(current), members(candidate)
+    joint = a.merge(b, on="item_id", suffixes=("_cur", "_cand"))
+    c = joint.groupby(["topic_id_cur", "topic_id_cand"]).size().rename("n").reset_index()
+    size_a, size_b = a.groupby("topic_id").size(), b.groupby("topic_id").size()
+    c["r"] = c["n"] / c["topic_id_cur"].map(size_a)
+    c["s"] = c["n"] / c["topic_id_cand"].map(size_b)
+    names_a, names_b = current.names(), candidate.names()
+    rows, continuing = [], set()
+    # each current topic's main target (most of its items; ties: the target it makes up most of)
+    target = c.sort_values(["r", "s", "topic_id_cand"], ascending=[False, False, True]) \
+        .drop_duplicates("topic_id_cur")
+    into = target[target["r"] >= KEEP].groupby("topic_id_cand")["topic_id_cur"].apply(list).to_dict()
+    # each candidate topic's main source: the current topic that makes up most of it
+    source = c.sort_values(["s", "topic_id_cur"], ascending=[False, True]).drop_duplicates("topic_id_cand") \
+        .set_index("topic_id_cand")["topic_id_cur"]
+    for t in sorted(size_a.index):
+        ct = c[c["topic_id_cur"] == t].sort_values(["r", "s", "topic_id_cand"], ascending=[False, False, True])
+        best = ct.iloc[0] if len(ct) else None
+        parts = ct[(ct["s"] >= KEEP) & (ct["topic_id_cand"].map(source) == t)]
+        if len(parts) >= 2 and parts["r"].sum() >= KEEP:
+            status, to = "split", sorted(parts["topic_id_cand"])
+        elif best is not None and best["r"] >= KEEP and len(into.get(best["topic_id_cand"], [])) >= 2:
+            status, to = "merged", [best["topic_id_cand"]]
+        elif best is not None and best["r"] >= KEEP and best["s"] >= KEEP:
+            to = [best["topic_id_cand"]]
+            status = "kept" if names_b.get(to[0]) == names_a.get(t) else "renamed"
+        else:
+            status, to = "retired", []
+        continuing.update(to)
+        rows.append({"side": "current", "topic_id": t, "name": names_a.get(t, t), "size": int(size_a[t]),
+                     "status": status, "to": "|".join(to), "to_names": "|".join(names_b.get(x, x) for x in to)})
+    merged = [r for r in rows if r["status"] == "merged"]
+    for r in merged:  # name the other current topics merged into the same candidate topic
+        r["with"] = "|".join(o["topic_id"] for o in merged if o["to"] == r["to"] and o is not r)
+    for t in sorted(size_b.index):
+        if t not in continuing:
+            rows.append({"side": "candidate", "topic_id": t, "name": names_b.get(t, t), "size": int(size_b[t]),
+                         "status": "new", "to": "", "to_names": ""})
+    out = pd.DataFrame(rows)
+    out.insert(0, "level", level)
+    if "with" not in out.columns:
+        out["with"] = ""
+    out["with"] = out["with"].fillna("")
+    return out
+
+
+def label_impact(current, candidate, interactions, label_config: LabelConfig | None = None,
+                 window_days: float | None = None) -> tuple[dict[str, Any], pd.DataFrame]:
+    """Labels under both taxonomies (same settings), compared on the interactions of the last
+    ``window_days`` (all when None), each user's full prior history counted."""
+    from .labelling import plan_labels
+    cfg = label_config or LabelConfig()
+    keys = ["user_id", "item_id", "ts", "event_id", "level"]
+    runs = [plan_labels(interactions, tax, cfg) for tax in (current, candidate)]
+    a, b = (r.labels_frame() for r in runs)
+    if window_days is not None and len(a):
+        since = pd.to_datetime(a["ts"]).max() - pd.Timedelta(days=window_days)
+        a, b = a[pd.to_datetime(a["ts"]) >= since], b[pd.to_datetime(b["ts"]) >= since]
+    j = a.merge(b, on=keys, how="inner", suffixes=("_cur", "_cand"))
+    flips = j.groupby(["level", "label_cur", "label_cand"]).size().rename("rows").reset_index()
+    flipped = j[j["label_cur"] != j["label_cand"]]
+    per_level = {}
+    for level, g in j.groupby("level"):
+        n = len(g)
+        per_level[str(int(level))] = {
+            "rows": int(n), "flip_share": float((g["label_cur"] != g["label_cand"]).mean()) if n else 0.0,
+            "in_profile_to_new_interest": int(((g.label_cur == "in_profile") & (g.label_cand == "new_interest")).sum()),
+            "new_interest_to_in_profile": int(((g.label_cur == "new_interest") & (g.label_cand == "in_profile")).sum()),
+            "to_unplaced": int(((g.label_cur != "unplaced") & (g.label_cand == "unplaced")).sum()),
+            "from_unplaced": int(((g.label_cur == "unplaced") & (g.label_cand != "unplaced")).sum()),
+            "new_interest_rate": [float((g.label_cur == "new_interest").mean()), float((g.label_cand == "new_interest").mean())],
+            "discovery_rate": [float(g.discovery_cur.mean()), float(g.discovery_cand.mean())],
+            "shaped_reward_total": [float(g.shaped_reward_cur.sum()), float(g.shaped_reward_cand.sum())]}
+    sizes = []
+    for r in runs:
+        fp = r.footprints_frame()
+        known = fp[fp["known"]].groupby(["level", "user_id"]).size()
+        sizes.append({str(int(lv)): {"median": float(s.median()), "p90": float(s.quantile(0.9))}
+                      for lv, s in known.groupby(level=0)})
+    summary = {"rows_compared": int(len(j)), "levels": per_level,
+               "flip_share": float((j["label_cur"] != j["label_cand"]).mean()) if len(j) else 0.0,
+               "footprint_known_topics": {"current": sizes[0], "candidate": sizes[1]},
+               "users_most_affected": flipped.groupby("user_id").size().sort_values(ascending=False)
+               .head(10).to_dict(),
+               "topics_most_affected": flipped.groupby("topic_id_cur").size().sort_values(ascending=False)
+               .head(10).to_dict()}
+    return summary, flips
+
+
+def check_rollout(current, candidate, interactions, config: GateConfig | None = None, *,
+                  label_config: LabelConfig | None = None, window_days: float | None = None) -> RolloutResult:
+    """Compare ``candidate`` with ``current`` and apply the gate (see the module docstring)."""
+    gate = config or GateConfig()
+    levels = sorted(set(current.levels) & set(candidate.levels))
+    if not levels:
+        from .errors import ConfigError
+        raise ConfigError(f"the taxonomies share no level (current {current.levels}, candidate {candidate.levels}).")
+    agree = {str(lv): agreement(current, candidate, lv) for lv in levels}
+    tmap = pd.concat([topic_map(current, candidate, lv) for lv in levels], ignore_index=True)
+    impact, flips = label_impact(current, candidate, interactions,
+                                 LabelConfig(**{**(label_config or LabelConfig()).model_dump(), "levels": tuple(levels)}),
+                                 window_days)
+    cur_topics = tmap[tmap["side"] == "current"]
+    sizes = candidate.item_topics[candidate.item_topics["topic_id"].notna()].groupby(["level", "topic_id"]).size()
+    names = candidate.names()
+    n_items = int(candidate.manifest.get("n_items") or candidate.item_topics["item_id"].nunique())
+    unplaced_share = float(candidate.manifest.get("n_unplaced", 0)) / n_items if n_items else 0.0
+    quality = {"topics_per_level": {str(lv): int((sizes.index.get_level_values(0) == lv).sum()) for lv in levels},
+               "unplaced_share": unplaced_share,
+               "smallest": [{"topic_id": t, "name": names.get(t, t), "size": int(n)}
+                            for (_, t), n in sizes.sort_values().head(5).items()],
+               "largest": [{"topic_id": t, "name": names.get(t, t), "size": int(n)}
+                           for (_, t), n in sizes.sort_values(ascending=False).head(5).items()]}
+    finest = str(max(levels))
+    checks = {
+        "flip_share": (impact["flip_share"], impact["flip_share"] <= gate.max_flip_share, f"<= {gate.max_flip_share}"),
+        "ami": (agree[finest]["ami"], agree[finest]["ami"] >= gate.min_ami, f">= {gate.min_ami}"),
+        "unplaced_share": (unplaced_share, unplaced_share <= gate.max_unplaced_share, f"<= {gate.max_unplaced_share}"),
+        "retired_share": (float((cur_topics["status"] == "retired").mean()) if len(cur_topics) else 0.0, None,
+                          f"<= {gate.max_retired_share}"),
+        "min_topic_size": (int(sizes.min()) if len(sizes) else 0, None, f">= {gate.min_topic_size}")}
+    checks["retired_share"] = (checks["retired_share"][0], checks["retired_share"][0] <= gate.max_retired_share,
+                               checks["retired_share"][2])
+    checks["min_topic_size"] = (checks["min_topic_size"][0], checks["min_topic_size"][0] >= gate.min_topic_size,
+                                checks["min_topic_size"][2])
+    gate_out = {k: {"value": v, "passed": bool(ok), "threshold": th} for k, (v, ok, th) in checks.items()}
+    summary = {"current": current.version, "candidate": candidate.version, "levels": levels,
+               "agreement": agree, "topic_map_counts": {
+                   str(lv): tmap[tmap["level"] == lv]["status"].value_counts().to_dict() for lv in levels},
+               "labels": impact, "candidate_quality": quality,
+               "gate": {"passed": all(c["passed"] for c in gate_out.values()), "checks": gate_out,
+                        "config": json.loads(gate.canonical_json())}}
+    return RolloutResult(summary, tmap, flips)

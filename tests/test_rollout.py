@@ -1,0 +1,139 @@
+"""Checking a taxonomy change before rollout: agreement, topic map, label flips and the gate.
+
+Outside checks: scikit-learn's ARI/AMI/NMI on the same assignments; MovieLens 100K genres
+(GroupLens; Harper & Konstan, ACM TiiS 2015) with a candidate that merges three genres and one
+that splits a genre by release decade, flips recounted directly in DuckDB SQL.
+"""
+from __future__ import annotations
+
+import duckdb
+import numpy as np
+import pandas as pd
+import pytest
+from sklearn.metrics import adjusted_mutual_info_score, adjusted_rand_score, normalized_mutual_info_score
+
+from labeler import GateConfig, LabelConfig, Taxonomy, label_interactions
+from labeler.rollout import agreement, check_rollout
+
+
+def _tables_tax(assign: dict[str, str], name: str = "t") -> Taxonomy:
+    topics = pd.DataFrame({"topic_id": sorted(set(assign.values())), "level": 0})
+    topics["name"] = topics["topic_id"]
+    it = pd.DataFrame({"item_id": list(assign), "level": 0, "topic_id": list(assign.values())})
+    return Taxonomy.from_tables(topics, it, name=name)
+
+
+@pytest.mark.parametrize("seed", range(5))
+def test_agreement_equals_scikit_learn(seed):
+    """ARI, AMI and NMI are scikit-learn's on the items' primary topics (reference library)."""
+    rng = np.random.default_rng(seed)
+    items = [f"i{k}" for k in range(300)]
+    a = {i: f"a{rng.integers(0, 6)}" for i in items}
+    b = {i: f"b{rng.integers(0, 9)}" for i in items if rng.random() > 0.1}  # some left unplaced
+    got = agreement(_tables_tax(a), _tables_tax(b), 0)
+    x = [a[i] for i in items]
+    y = [b.get(i, "(unplaced)") for i in items]
+    assert got["ari"] == pytest.approx(adjusted_rand_score(x, y))
+    assert got["ami"] == pytest.approx(adjusted_mutual_info_score(x, y))
+    assert got["nmi"] == pytest.approx(normalized_mutual_info_score(x, y))
+    assert got["only_current"] == sum(i not in b for i in items)
+
+
+@pytest.fixture(scope="module")
+def movielens():
+    from external import movielens_100k
+    ratings, movies = movielens_100k()
+    return ratings.rename(columns={"rating": "engagement"}), movies
+
+
+def _recount_flips(a: pd.DataFrame, b: pd.DataFrame) -> int:
+    """Label flips counted directly in DuckDB SQL from the two label tables."""
+    con = duckdb.connect()
+    con.register("a", a[["user_id", "item_id", "ts", "level", "label"]])
+    con.register("b", b[["user_id", "item_id", "ts", "level", "label"]])
+    return con.execute("SELECT count(*) FROM a JOIN b USING (user_id, item_id, ts, level) "
+                       "WHERE a.label <> b.label").fetchone()[0]
+
+
+def test_identity_and_renamed_ids_change_nothing(movielens):
+    """A taxonomy against itself, and against itself under other ids: no flips, all kept, AMI 1."""
+    ratings, movies = movielens
+    tax = Taxonomy.from_categories(movies, column="genres")
+    gate = GateConfig(min_topic_size=2)  # MovieLens 100K's genre "unknown" holds 2 movies (counted here)
+    assert int(tax.topics.set_index("name").loc["unknown", "size"]) == 2
+    res = check_rollout(tax, tax, ratings, gate)
+    cur = res.topic_map[res.topic_map["side"] == "current"]
+    assert set(cur["status"]) == {"kept"} and res.summary["labels"]["flip_share"] == 0.0
+    assert res.summary["agreement"]["0"]["ami"] == pytest.approx(1.0) and res.passed
+    renamed = Taxonomy.from_tables(tax.topics.assign(topic_id="x" + tax.topics["topic_id"]),
+                                   tax.item_topics.assign(topic_id="x" + tax.item_topics["topic_id"]), name="ids")
+    res = check_rollout(tax, renamed, ratings, gate)
+    assert set(res.topic_map.loc[res.topic_map["side"] == "current", "status"]) == {"kept"}
+    assert res.summary["labels"]["flip_share"] == 0.0 and res.passed
+
+
+def test_movielens_merge_and_split_are_reported_exactly(movielens, tmp_path):
+    ratings, movies = movielens
+    current = Taxonomy.from_categories(movies, column="genres")
+    suspense = {"Thriller", "Crime", "Mystery"}
+
+    def merge(g):
+        out = ["Suspense" if x in suspense else x for x in g.split("|")]
+        return "|".join(dict.fromkeys(out))
+    merged = Taxonomy.from_categories(movies.assign(genres=movies["genres"].map(merge)), column="genres")
+    decade = movies["year"].map(lambda y: f"{y[:3]}0s" if y else "unknown")
+    split_genres = [("|".join(f"Drama {d}" if x == "Drama" else x for x in g.split("|")))
+                    for g, d in zip(movies["genres"], decade)]
+    split = Taxonomy.from_categories(movies.assign(genres=split_genres), column="genres")
+    names = current.names()
+
+    res = check_rollout(current, merged, ratings)
+    m = res.topic_map[res.topic_map["side"] == "current"].assign(name=lambda t: t["topic_id"].map(names))
+    assert set(m.loc[m["status"] == "merged", "name"]) == suspense
+    assert set(m.loc[m["status"] != "merged", "status"]) == {"kept"}
+    a = label_interactions(ratings, current, LabelConfig())
+    b = label_interactions(ratings, merged, LabelConfig())
+    flips = res.flips
+    assert int(flips.loc[flips["label_cur"] != flips["label_cand"], "rows"].sum()) == _recount_flips(a, b) > 0
+
+    res = check_rollout(current, split, ratings)
+    m = res.topic_map[res.topic_map["side"] == "current"].assign(name=lambda t: t["topic_id"].map(names))
+    assert m.loc[m["status"] == "split", "name"].tolist() == ["Drama"]
+    assert set(m.loc[m["status"] != "split", "status"]) == {"kept"}
+    targets = m.loc[m["status"] == "split", "to_names"].iloc[0].split("|")
+    assert set(targets) <= {f"Drama {d}" for d in decade.unique()} and len(targets) >= 2
+    b = label_interactions(ratings, split, LabelConfig())
+    flips = res.flips
+    assert int(flips.loc[flips["label_cur"] != flips["label_cand"], "rows"].sum()) == _recount_flips(a, b) > 0
+    out = res.write(tmp_path / "check")
+    assert (out / "summary.json").exists() and (out / "topic_map.csv").exists()
+
+
+def test_gate_fails_on_a_very_different_candidate(movielens):
+    ratings, movies = movielens
+    current = Taxonomy.from_categories(movies, column="genres")
+    rng = np.random.default_rng(0)
+    shuffled = Taxonomy.from_categories(movies.assign(genres=rng.permutation(movies["genres"].to_numpy())),
+                                        column="genres")
+    res = check_rollout(current, shuffled, ratings, GateConfig(max_flip_share=0.01, min_ami=0.5))
+    assert not res.passed
+    checks = res.summary["gate"]["checks"]
+    assert not checks["ami"]["passed"] and checks["ami"]["value"] < 0.1
+
+
+def test_cli_rollout_check_exit_codes(cli, fixtures, tmp_path):
+    """`labeler rollout-check`: 0 when the gate passes (a taxonomy against itself), 1 when it
+    fails, 2 on a usage error; summary.json written."""
+    import pandas as pd
+    items = pd.read_csv(fixtures / "items.csv")
+    Taxonomy.from_categories(items).save(tmp_path / "cur")
+    code, out, err = cli("rollout-check", "--current", tmp_path / "cur", "--candidate", tmp_path / "cur",
+                         "--interactions", fixtures / "interactions.csv", "--out", tmp_path / "o1", "-q")
+    assert code in (0, 1), err
+    assert (tmp_path / "o1" / "summary.json").exists() and "rollout check" in out
+    import json
+    summary = json.loads((tmp_path / "o1" / "summary.json").read_text())
+    assert code == (0 if summary["gate"]["passed"] else 1)
+    assert summary["labels"]["flip_share"] == 0.0
+    code, _, _ = cli("rollout-check", "--current", tmp_path / "cur")
+    assert code == 2
