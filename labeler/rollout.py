@@ -134,13 +134,13 @@ def topic_map(current, candidate, level: int) -> pd.DataFrame:
 
 
 def label_impact(current, candidate, interactions, label_config: LabelConfig | None = None,
-                 window_days: float | None = None) -> tuple[dict[str, Any], pd.DataFrame]:
+                 window_days: float | None = None, engine=None) -> tuple[dict[str, Any], pd.DataFrame]:
     """Labels under both taxonomies (same settings), compared on the interactions of the last
     ``window_days`` (all when None), each user's full prior history counted."""
     from .labelling import plan_labels
     cfg = label_config or LabelConfig()
     keys = ["user_id", "item_id", "ts", "event_id", "level"]
-    runs = [plan_labels(interactions, tax, cfg) for tax in (current, candidate)]
+    runs = [plan_labels(interactions, tax, cfg, engine=engine) for tax in (current, candidate)]
     a, b = (r.labels_frame() for r in runs)
     if window_days is not None and len(a):
         since = pd.to_datetime(a["ts"]).max() - pd.Timedelta(days=window_days)
@@ -177,7 +177,8 @@ def label_impact(current, candidate, interactions, label_config: LabelConfig | N
 
 
 def check_rollout(current, candidate, interactions, config: GateConfig | None = None, *,
-                  label_config: LabelConfig | None = None, window_days: float | None = None) -> RolloutResult:
+                  label_config: LabelConfig | None = None, window_days: float | None = None,
+                  engine=None) -> RolloutResult:
     """Compare ``candidate`` with ``current`` and apply the gate (see the module docstring)."""
     gate = config or GateConfig()
     levels = sorted(set(current.levels) & set(candidate.levels))
@@ -188,7 +189,7 @@ def check_rollout(current, candidate, interactions, config: GateConfig | None = 
     tmap = pd.concat([topic_map(current, candidate, lv) for lv in levels], ignore_index=True)
     impact, flips = label_impact(current, candidate, interactions,
                                  LabelConfig(**{**(label_config or LabelConfig()).model_dump(), "levels": tuple(levels)}),
-                                 window_days)
+                                 window_days, engine)
     cur_topics = tmap[tmap["side"] == "current"]
     sizes = candidate.item_topics[candidate.item_topics["topic_id"].notna()].groupby(["level", "topic_id"]).size()
     names = candidate.names()

@@ -400,3 +400,36 @@ def test_demo_job_config_points_at_the_demo_output(fixtures):
     assert Path(cfg.items) == (root / "demo-out" / "data" / "items.parquet").resolve()
     assert Path(cfg.interactions) == (root / "demo-out" / "data" / "daily").resolve()
     assert Path(cfg.work_dir).is_relative_to((root / "demo-out").resolve())
+
+
+@pytest.mark.parametrize("passes", [True, False])
+def test_rebuild_taxonomy_switches_only_when_the_gate_passes(tmp_path, scenario, passes):
+    """--rebuild-taxonomy builds a candidate, runs the rollout check, and switches (recomputing in
+    full under the new taxonomy) only when the gate passes; otherwise it keeps the current one."""
+    root, dates = setup_root(tmp_path, scenario, 20)
+    items, _ = scenario
+    cfg = make_config(root)
+    run_job(cfg)
+    before = load_state(root / "work")
+    edited = items.copy()  # an editorial change: one category folded into another
+    cats = sorted(c for c in edited["category"].dropna().unique() if "|" not in c)
+    edited.loc[edited["category"] == cats[0], "category"] = cats[1]
+    edited.to_parquet(root / "items.parquet", index=False)
+    gate = {"max_flip_share": 1.0, "min_ami": 0.0, "max_unplaced_share": 1.0, "max_retired_share": 1.0,
+            "min_topic_size": 1} if passes else {"max_flip_share": 0.0}
+    cfg = cfg.model_copy(update={"gate": cfg.gate.model_validate(gate)})
+    m = run_job(cfg, rebuild_taxonomy=True).manifest
+    refresh = m["taxonomy_refresh"]
+    assert refresh["checked"] and refresh["passed"] is passes and refresh["switched"] is passes
+    assert (root / "work" / "runs" / m["run"] / "rollout-check" / "summary.json").exists()
+    after = load_state(root / "work")
+    if passes:
+        assert m["mode"] == "full" and after["taxonomy"]["version"] == refresh["candidate"]
+        import pyarrow.parquet as pq
+        labels = pq.read_table(current_outputs(root / "work") / "labels").to_pandas()
+        assert set(labels["taxonomy_version"]) == {refresh["candidate"]}
+        run_job(make_config(root, work="fresh"))  # a fresh job on the edited items: same outputs
+        assert_same_outputs(root / "work", root / "fresh")
+    else:
+        assert "flip_share" in refresh["reason"]
+        assert after["taxonomy"] == before["taxonomy"]

@@ -143,6 +143,12 @@ class _Run:
 
         t0 = time.perf_counter()
         tax, register, changes = self._items(state, mode)
+        self.refresh = self._refresh_due(changes)
+        if state is not None and (self.rebuild or self.refresh["due"]):
+            switched = self._try_refresh(tax, register, changes, state, run_id)
+            if switched is not None:
+                tax, register = switched
+                mode, why = "full", "taxonomy switched after the rollout gate passed"
         self._timed("items", t0)
         failpoints.hit("after_items")
 
@@ -167,7 +173,7 @@ class _Run:
                                "partitions_seen": len(parts) + len(rejected), "ignored_entries": ignored},
                     "partitions": statuses, "rejected": rejected,
                     "items": {k: v for k, v in changes.items() if k != "first_seen"},
-                    "lock_taken_over": self.lock.took_over}
+                    "lock_taken_over": self.lock.took_over, "taxonomy_refresh": self.refresh}
         if self.lock.took_over:
             manifest["lock_taken_over"] = self.lock.took_over
         if not staged_new and not removed and not reg_changed:
@@ -195,7 +201,7 @@ class _Run:
         n_users = None
         if users is not None:
             n_users = len(users)
-            ut = eng.table(pa.table({"user_id": users}), "relabel")
+            ut = eng.table(pa.table({"user_id": pa.array(users, pa.string())}), "relabel")
             ev = ev.filter(ev.user_id.isin(ut.user_id))
         view = taxonomy_view(tax, register)
         staged = StagedInput(ev, source=cfg.interactions, rows=sum(p.rows for p in parts.values()),
@@ -257,8 +263,7 @@ class _Run:
             footprint_rows=writer.footprints.num_rows, users=writer.people.num_rows,
             versions={"taxonomy": tax.version, "labels_by_date": {
                 d: versions(d) for d in writer.dates_written}},
-            store={"dir": str(work / "store"), "snapshot": snapshot},
-            taxonomy_refresh=self._refresh_due(changes))
+            store={"dir": str(work / "store"), "snapshot": snapshot})
         new_state = {"format": STATE_FORMAT, "run": seq, "last_run": run_id, "generation": gen_name,
                      "watermark": manifest["watermark"], "watermark_us": watermark_us,
                      "taxonomy": {"version": tax.version, "dir": f"taxonomy/{tax.version[:16]}"},
@@ -306,6 +311,45 @@ class _Run:
                         "refresh is due (run with --rebuild-taxonomy)", 100 * share, 100 * limit)
         return out
 
+    def _try_refresh(self, tax, register, changes, state, run_id):
+        """Build a candidate taxonomy (stable ids from the current one), check it against the
+        current one on the staged interactions, and return (candidate, register) if the gate
+        passes; otherwise keep the current taxonomy and record why."""
+        from ..rollout import check_rollout
+        cfg = self.cfg
+        items, hashes, category = self._items_now
+        if category is not None:
+            candidate = Taxonomy.from_categories(items, column=category)
+        else:
+            candidate = build_taxonomy(items, cfg.taxonomy, embedder=self.embedder, previous=tax,
+                                       progress=self.progress, source=cfg.items)
+        self.refresh["requested"] = bool(self.rebuild)
+        self.refresh["candidate"] = candidate.version
+        if candidate.version == tax.version:
+            self.refresh.update(checked=False, switched=False, reason="the candidate equals the current taxonomy")
+            return None
+        files = [str(self.work / p["events"]) for p in state["partitions"].values() if p["rows"]]
+        eng = make_engine(cfg.engine)
+        staged = StagedInput(eng.read_parquet(files), source="staged interactions",
+                             rows=sum(p["rows"] for p in state["partitions"].values()), content_hash="job")
+        result = check_rollout(taxonomy_view(tax, register), candidate, staged, cfg.gate, label_config=cfg.labels,
+                               engine=eng)
+        out = result.write(self.work / "runs" / run_id / "rollout-check")
+        failed = [k for k, c in result.summary["gate"]["checks"].items() if not c["passed"]]
+        self.refresh.update(checked=True, passed=result.passed, report=str(out), failed_checks=failed)
+        if not result.passed:
+            self.refresh.update(switched=False, reason="rollout gate failed: " + ", ".join(
+                f"{k}={result.summary['gate']['checks'][k]['value']:.4g} "
+                f"(needs {result.summary['gate']['checks'][k]['threshold']})" for k in failed))
+            log.warning("taxonomy refresh: candidate %s kept out, %s", candidate.version[:12], self.refresh["reason"])
+            return None
+        self._save_taxonomy(candidate)
+        new_register = first_register(candidate, items, hashes)
+        self.register_rel = self._save_register(new_register)
+        self.refresh.update(switched=True, reason="rollout gate passed")
+        log.info("taxonomy refresh: switched to %s; labels and footprints are recomputed in full", candidate.version[:12])
+        return candidate, new_register
+
     # -- items ----------------------------------------------------------------------------------
     def _items(self, state, mode):
         cfg = self.cfg
@@ -313,6 +357,7 @@ class _Run:
         category = cfg.run.category_column if cfg.run.taxonomy_from == "categories" else None
         items, _ = normalize_items(raw, text_columns=cfg.taxonomy.text_columns, source=cfg.items, category=category)
         hashes = text_hashes(items, cfg.taxonomy.text_columns, category)
+        self._items_now = (items, hashes, category)
         changes = {"new": 0, "changed": 0, "placed": 0, "unplaced": 0, "unplaced_share": 0.0, "added_rows": 0}
         if state is None:
             if category is not None:
