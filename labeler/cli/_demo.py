@@ -45,6 +45,6 @@ def run(args) -> int:
           f"{r2['run']} {r2['mode']}: re-labelled {r2['relabelled_users']} users from {r2['relabelled_from']}, "
           f"{r2['dates_linked']} dates kept as they were; labels equal the batch labels: "
           f"{'yes' if job['labels_equal_batch_labels'] else 'NO'}")
-    print(f"  next: `labeler run --config fixtures/demo-job.toml` runs the same job from a TOML file")
+    print("  next: `labeler run --config fixtures/demo-job.toml` runs the same job from a TOML file")
     print(f"outputs: {lab['dir']}/ and {args.out}/demo-summary.json")
     return 0
