@@ -151,7 +151,7 @@ def age_footprints(table: pa.Table, watermark_us: int, min_support: int, memory_
     if memory_us is None or table.num_rows == 0:
         return table
     recent = table.column("recent_us")
-    oldest = pc.list_element(recent, 0) if min_support >= 1 else None
+    oldest = pc.list_element(recent, 0)  # the times are sorted: the oldest of the last min_support
     full = pc.greater_equal(pc.list_value_length(recent), min_support)
     inside = pc.greater_equal(pc.fill_null(oldest, -(2 ** 62)), watermark_us + 1 - memory_us)
     known = pc.and_(table.column("known"), pc.and_(pc.fill_null(full, False), pc.fill_null(inside, False)))

@@ -174,8 +174,6 @@ class _Run:
                     "partitions": statuses, "rejected": rejected,
                     "items": {k: v for k, v in changes.items() if k != "first_seen"},
                     "lock_taken_over": self.lock.took_over, "taxonomy_refresh": self.refresh}
-        if self.lock.took_over:
-            manifest["lock_taken_over"] = self.lock.took_over
         if not staged_new and not removed and not reg_changed:
             manifest.update(status="up to date", watermark=state and state.get("watermark"),
                             generation=state and state.get("generation"))
@@ -380,7 +378,6 @@ class _Run:
                            added_rows=int(len(register) - len(read_register(self.work / state["register"]))),
                            first_seen=first_seen or {})
         self.register_rel = self._save_register(register)
-        self.register_added = register if state is None else None
         return tax, register, changes
 
     def _first_seen(self, state, register, items) -> dict[str, int]:
