@@ -43,6 +43,10 @@ class RolloutResult:
     summary: dict[str, Any]
     topic_map: pd.DataFrame
     flips: pd.DataFrame
+    contingency: pd.DataFrame = dataclasses.field(default_factory=pd.DataFrame)
+    names_current: dict = dataclasses.field(default_factory=dict)
+    names_candidate: dict = dataclasses.field(default_factory=dict)
+    candidate_sizes: dict = dataclasses.field(default_factory=dict)
 
     @property
     def passed(self) -> bool:
@@ -53,6 +57,9 @@ class RolloutResult:
         out.mkdir(parents=True, exist_ok=True)
         self.topic_map.to_csv(out / "topic_map.csv", index=False)
         self.flips.to_csv(out / "label_flips.csv", index=False)
+        from .rollout_report import render
+        (out / ".report.html.tmp").write_text(render(self), encoding="utf-8")
+        os.replace(out / ".report.html.tmp", out / "report.html")
         tmp = out / ".summary.json.tmp"
         tmp.write_text(json.dumps(self.summary, indent=2, sort_keys=True, default=str) + "\n")
         os.replace(tmp, out / "summary.json")
@@ -81,18 +88,27 @@ def agreement(current, candidate, level: int) -> dict[str, Any]:
             "only_candidate": int(len(b.index.difference(a.index)))}
 
 
-def topic_map(current, candidate, level: int) -> pd.DataFrame:
-    """One row per current topic (status kept/renamed/split/merged/retired and its targets) and per
-    new candidate topic (status new), from item memberships (see the module docstring)."""
-    def members(tax):
-        it = tax.item_topics[(tax.item_topics["level"] == level) & tax.item_topics["topic_id"].notna()]
-        return it[["item_id", "topic_id"]].drop_duplicates()
-    a, b = members(current), members(candidate)
+def _members(tax, level: int) -> pd.DataFrame:
+    it = tax.item_topics[(tax.item_topics["level"] == level) & tax.item_topics["topic_id"].notna()]
+    return it[["item_id", "topic_id"]].drop_duplicates()
+
+
+def contingency(current, candidate, level: int):
+    """(pairs, current sizes, candidate sizes): items shared by each (current, candidate) topic
+    pair, with r = n / current size and s = n / candidate size."""
+    a, b = _members(current, level), _members(candidate, level)
     joint = a.merge(b, on="item_id", suffixes=("_cur", "_cand"))
     c = joint.groupby(["topic_id_cur", "topic_id_cand"]).size().rename("n").reset_index()
     size_a, size_b = a.groupby("topic_id").size(), b.groupby("topic_id").size()
     c["r"] = c["n"] / c["topic_id_cur"].map(size_a)
     c["s"] = c["n"] / c["topic_id_cand"].map(size_b)
+    return c, size_a, size_b
+
+
+def topic_map(current, candidate, level: int) -> pd.DataFrame:
+    """One row per current topic (status kept/renamed/split/merged/retired and its targets) and per
+    new candidate topic (status new), from item memberships (see the module docstring)."""
+    c, size_a, size_b = contingency(current, candidate, level)
     names_a, names_b = current.names(), candidate.names()
     rows, continuing = [], set()
     # each current topic's main target (most of its items; ties: the target it makes up most of)
@@ -176,16 +192,68 @@ def label_impact(current, candidate, interactions, label_config: LabelConfig | N
     return summary, flips
 
 
+def sample_users(interactions, n: int):
+    """The interactions of ``n`` users chosen by the SHA-256 of their id (the same users every
+    time), each with their full history."""
+    import hashlib
+    from .intake import Staged
+    if isinstance(interactions, Staged):
+        import duckdb  # noqa: F401  (the table lives on the caller's engine)
+        t = interactions.table
+        users = sorted(t.select("user_id").distinct().execute()["user_id"],
+                       key=lambda u: hashlib.sha256(str(u).encode()).hexdigest())[:n]
+        return dataclasses.replace(interactions, table=t.filter(t.user_id.isin(users)))
+    if isinstance(interactions, (str, os.PathLike)):
+        from .tables import read_table
+        interactions = read_table(Path(interactions))
+    users = sorted(interactions["user_id"].astype(str).unique(),
+                   key=lambda u: hashlib.sha256(u.encode()).hexdigest())[:n]
+    return interactions[interactions["user_id"].astype(str).isin(users)]
+
+
+def silhouette(tax, items: pd.DataFrame, level: int, sample: int = 2000, seed: int = 0) -> float | None:
+    """Cosine silhouette of ``tax``'s topics at ``level`` on a sample of its placed items, in its own
+    embedding space; None when the taxonomy has no embedding model (editorial) or too few topics."""
+    if tax.kind != "learned" or items is None:
+        return None
+    from sklearn.metrics import silhouette_score
+    from .taxonomy.build import embed_items
+    from .tables import normalize_items
+    prim = _primary(tax, level)
+    its, _ = normalize_items(items, text_columns=tuple(tax.manifest["config"]["text_columns"]))
+    its = its[its["item_id"].isin(prim.index)]
+    if len(its) > sample:
+        its = its.sample(sample, random_state=seed)
+    labels = prim.reindex(its["item_id"]).to_numpy()
+    if len(set(labels)) < 2 or len(its) < 3:
+        return None
+    vectors, _ = embed_items(its, tax.manifest["config"], embedder=tax.embedder(), progress=False)
+    return float(silhouette_score(vectors, labels, metric="cosine"))
+
+
 def check_rollout(current, candidate, interactions, config: GateConfig | None = None, *,
                   label_config: LabelConfig | None = None, window_days: float | None = None,
+                  sample: int | None = None, items: pd.DataFrame | None = None,
                   engine=None) -> RolloutResult:
-    """Compare ``candidate`` with ``current`` and apply the gate (see the module docstring)."""
+    """Compare ``candidate`` with ``current`` and apply the gate (see the module docstring).
+
+    ``window_days`` compares only the last days' labels (all history still counts); ``sample``
+    compares ``sample`` users (chosen by a hash of their id, each with their full history);
+    ``items`` (the items table) adds newly (un)placed counts and the candidate's silhouette.
+    """
     gate = config or GateConfig()
     levels = sorted(set(current.levels) & set(candidate.levels))
     if not levels:
         from .errors import ConfigError
         raise ConfigError(f"the taxonomies share no level (current {current.levels}, candidate {candidate.levels}).")
+    if sample is not None:
+        interactions = sample_users(interactions, sample)
     agree = {str(lv): agreement(current, candidate, lv) for lv in levels}
+    if items is not None:
+        universe = set(items["item_id"].astype(str))
+        for lv in levels:
+            a, b = set(_primary(current, lv).index), set(_primary(candidate, lv).index)
+            agree[str(lv)].update(newly_unplaced=len((a - b) & universe), newly_placed=len((b - a) & universe))
     tmap = pd.concat([topic_map(current, candidate, lv) for lv in levels], ignore_index=True)
     impact, flips = label_impact(current, candidate, interactions,
                                  LabelConfig(**{**(label_config or LabelConfig()).model_dump(), "levels": tuple(levels)}),
@@ -196,7 +264,7 @@ def check_rollout(current, candidate, interactions, config: GateConfig | None = 
     n_items = int(candidate.manifest.get("n_items") or candidate.item_topics["item_id"].nunique())
     unplaced_share = float(candidate.manifest.get("n_unplaced", 0)) / n_items if n_items else 0.0
     quality = {"topics_per_level": {str(lv): int((sizes.index.get_level_values(0) == lv).sum()) for lv in levels},
-               "unplaced_share": unplaced_share,
+               "unplaced_share": unplaced_share, "silhouette": silhouette(candidate, items, max(levels)),
                "smallest": [{"topic_id": t, "name": names.get(t, t), "size": int(n)}
                             for (_, t), n in sizes.sort_values().head(5).items()],
                "largest": [{"topic_id": t, "name": names.get(t, t), "size": int(n)}
@@ -220,4 +288,6 @@ def check_rollout(current, candidate, interactions, config: GateConfig | None = 
                "labels": impact, "candidate_quality": quality,
                "gate": {"passed": all(c["passed"] for c in gate_out.values()), "checks": gate_out,
                         "config": json.loads(gate.canonical_json())}}
-    return RolloutResult(summary, tmap, flips)
+    cont = pd.concat([contingency(current, candidate, lv)[0].assign(level=lv) for lv in levels], ignore_index=True)
+    return RolloutResult(summary, tmap, flips, cont, current.names(), candidate.names(),
+                         {lv: sizes.loc[lv].tolist() for lv in levels if lv in sizes.index.get_level_values(0)})

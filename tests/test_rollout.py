@@ -137,3 +137,106 @@ def test_cli_rollout_check_exit_codes(cli, fixtures, tmp_path):
     assert summary["labels"]["flip_share"] == 0.0
     code, _, _ = cli("rollout-check", "--current", tmp_path / "cur")
     assert code == 2
+
+
+@pytest.fixture(scope="module")
+def merged_check(movielens, tmp_path_factory):
+    """The MovieLens merge candidate, with a genre renamed to markup, written as a report."""
+    ratings, movies = movielens
+    current = Taxonomy.from_categories(movies, column="genres")
+
+    def edit(g):
+        out = ["Suspense" if x in {"Thriller", "Crime", "Mystery"} else x for x in g.split("|")]
+        out = ["<script>alert('x')</script>" if x == "Western" else x for x in out]
+        return "|".join(dict.fromkeys(out))
+    candidate = Taxonomy.from_categories(movies.assign(genres=movies["genres"].map(edit)), column="genres")
+    res = check_rollout(current, candidate, ratings, items=movies)
+    return res, res.write(tmp_path_factory.mktemp("report"))
+
+
+def test_report_escapes_text_from_the_inputs(merged_check):
+    """Topic names come from user-generated metadata: they appear in report.html as text."""
+    _, out = merged_check
+    page = (out / "report.html").read_text(encoding="utf-8")
+    assert "<script>" not in page
+    assert "&lt;script&gt;alert(&#x27;x&#x27;)&lt;/script&gt;" in page
+    assert page.count("<img src='data:image/png;base64,") >= 4  # self-contained: figures inline
+
+
+def test_report_figures_are_labelled_without_overlapping_text(merged_check):
+    """Every figure has a title and axis or side labels, and no two texts overlap (drawn boxes)."""
+    from labeler import report
+    from labeler.rollout_report import figures
+    res, _ = merged_check
+    for name, fig in figures(res).items():
+        texts = [t.get_text() for t in fig.findobj(__import__("matplotlib").text.Text) if t.get_text().strip()]
+        assert any("level" in t or "agreement" in t.lower() for t in texts), name
+        assert report.overlapping_texts(fig) == [], name
+        report.close(fig)
+
+
+def test_flow_figure_with_many_topics_has_no_overlaps():
+    """A candidate with 60 fine topics: the flow names the 20 largest per side and sums the rest."""
+    from labeler import report
+    from labeler.rollout import check_rollout as check
+    from labeler.rollout_report import flow_figure
+    rng = np.random.default_rng(1)
+    items = [f"i{k}" for k in range(3000)]
+    a = {i: f"topic number {rng.integers(0, 60):02d} with a long name" for i in items}
+    b = {i: (v if rng.random() > 0.2 else f"other {rng.integers(0, 60):02d}") for i, v in a.items()}
+    log = pd.DataFrame({"user_id": [f"u{k % 50}" for k in range(600)], "item_id": rng.choice(items, 600),
+                        "ts": pd.Timestamp("2026-03-01", tz="UTC") + pd.to_timedelta(np.arange(600), unit="h")})
+    res = check(_tables_tax(a, "a"), _tables_tax(b, "b"), log)
+    fig = flow_figure(res, 0)
+    texts = [t.get_text() for t in fig.findobj(__import__("matplotlib").text.Text)]
+    assert any("other topics" in t for t in texts)
+    assert report.overlapping_texts(fig) == []
+    report.close(fig)
+
+
+def test_report_renders_in_a_browser(merged_check, tmp_path):
+    """report.html opens in headless Chromium (Debian package `chromium`) and draws a page."""
+    import shutil
+    import subprocess
+    browser = shutil.which("chromium") or shutil.which("chromium-browser")
+    if browser is None:
+        pytest.skip("chromium is not installed (.ci/run installs it)")
+    _, out = merged_check
+    shot = tmp_path / "shot.png"
+    proc = subprocess.run([browser, "--headless", "--no-sandbox", "--disable-gpu", "--hide-scrollbars",
+                           "--window-size=1200,3000", f"--screenshot={shot}", (out / "report.html").as_uri()],
+                          capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0 and shot.exists(), proc.stderr[-2000:]
+    import matplotlib.image
+    img = matplotlib.image.imread(shot)
+    assert img.shape[0] >= 3000 and img.shape[1] >= 1200
+    dark = (img[..., :3].mean(axis=2) < 0.5).mean()
+    assert 0.005 < dark < 0.5  # text and figures drawn on a light page, not blank, not black
+
+
+def test_sampled_users_keep_their_full_history(movielens):
+    """sample=N compares N users chosen by a hash of their id, each with every interaction."""
+    from labeler.rollout import sample_users
+    ratings, movies = movielens
+    got = sample_users(ratings, 50)
+    assert got["user_id"].nunique() == 50
+    full = ratings[ratings["user_id"].isin(set(got["user_id"]))]
+    assert len(got) == len(full)
+    assert sample_users(ratings, 50).equals(got)  # the same users every time
+    tax = Taxonomy.from_categories(movies, column="genres")
+    res = check_rollout(tax, tax, ratings, GateConfig(min_topic_size=2), sample=50)
+    assert res.summary["labels"]["rows_compared"] == len(got)
+
+
+def test_silhouette_of_a_learned_candidate(hashing):
+    """A learned candidate gets a cosine silhouette on a sample of its items (scikit-learn)."""
+    from labeler import TaxonomyConfig, build_taxonomy
+    words = ["sourdough bread", "bonsai wiring", "knitting socks", "espresso crema"]
+    items = pd.DataFrame({"item_id": [f"i{k}" for k in range(120)],
+                          "title": [f"{words[k % 4]} lesson {k}" for k in range(120)]})
+    tax = build_taxonomy(items, TaxonomyConfig(min_cluster_size=5), embedder=hashing, progress=False)
+    log = pd.DataFrame({"user_id": ["u1"] * 6, "item_id": [f"i{k}" for k in range(6)],
+                        "ts": pd.date_range("2026-03-01", periods=6, freq="D", tz="UTC")})
+    res = check_rollout(tax, tax, log, items=items)
+    sil = res.summary["candidate_quality"]["silhouette"]
+    assert sil is not None and -1.0 <= sil <= 1.0
