@@ -44,9 +44,17 @@ def overlapping_texts(fig, pad: float = 0.5) -> list[tuple[str, str]]:
     from matplotlib.text import Text
     fig.canvas.draw()
     renderer = fig.canvas.get_renderer()
+    undrawn = set()  # labels of ticks outside the view: they exist but are never drawn
+    for ax in fig.axes:
+        for axis in (ax.xaxis, ax.yaxis):
+            lo, hi = sorted(axis.get_view_interval())
+            eps = 1e-9 * max(1.0, abs(hi - lo))
+            for tick in axis.get_major_ticks() + axis.get_minor_ticks():
+                if not lo - eps <= tick.get_loc() <= hi + eps:
+                    undrawn.update({id(tick.label1), id(tick.label2)})
     boxes = []
     for t in fig.findobj(Text):
-        if not t.get_visible() or not t.get_text().strip():
+        if not t.get_visible() or not t.get_text().strip() or id(t) in undrawn:
             continue
         bb = t.get_window_extent(renderer)
         if bb.width <= 0 or bb.height <= 0:

@@ -7,7 +7,7 @@ import pytest
 
 from labeler.cli import build_parser
 
-VERBS = [["demo"], ["taxonomy"], ["taxonomy", "build"], ["taxonomy", "assign"], ["label"], ["run"], ["rollout-check"]]
+VERBS = [["demo"], ["taxonomy"], ["taxonomy", "build"], ["taxonomy", "assign"], ["label"], ["run"], ["rollout-check"], ["evaluate"]]
 
 
 def test_top_level_help_lists_every_verb(cli):

@@ -10,9 +10,9 @@ import logging
 import sys
 
 from ..errors import LabelerError
-from . import _demo, _label, _rollout, _run, _store, _taxonomy
+from . import _demo, _evaluate, _label, _rollout, _run, _store, _taxonomy
 
-VERBS = (_demo, _taxonomy, _label, _run, _store, _rollout)
+VERBS = (_demo, _taxonomy, _label, _run, _store, _rollout, _evaluate)
 
 
 def build_parser() -> argparse.ArgumentParser:
