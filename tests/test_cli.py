@@ -108,3 +108,7 @@ def test_demo_small_runs_every_stage(cli, tmp_path):
     job = json.loads((tmp_path / "d" / "demo-summary.json").read_text())["job"]
     assert [r["mode"] for r in job["runs"]] == ["full", "incremental"]
     assert job["labels_equal_batch_labels"] is True
+    evaluation = json.loads((tmp_path / "d" / "demo-summary.json").read_text())["evaluation"]
+    assert set(evaluation["policies"]) == {"popularity", "in_profile", "explore_mix"}
+    assert evaluation["expected_order_holds"] is True
+    assert (tmp_path / "d" / "evaluation" / "report.html").exists()

@@ -46,5 +46,16 @@ def run(args) -> int:
           f"{r2['dates_linked']} dates kept as they were; labels equal the batch labels: "
           f"{'yes' if job['labels_equal_batch_labels'] else 'NO'}")
     print("  next: `labeler run --config fixtures/demo-job.toml` runs the same job from a TOML file")
+    e = s["evaluation"]
+    print(f"evaluation of three policies ({e['lists']} lists at {e['request_time'][:10]}, k=10, next 2 weeks) "
+          f"-> {e['dir']}/report.html")
+    for name, m in sorted(e["policies"].items()):
+        print(f"  {name:<12} precision {m['precision']:.3f}  ndcg {m['ndcg']:.3f}  novelty {m['novelty']:.2f}  "
+              f"unexpectedness {m['unexpectedness']:.2f}  serendipity {m['serendipity']:.3f}")
+    print("  expected order (unexpectedness: in_profile 0 < explore_mix; novelty: popularity lowest): "
+          + ("holds" if e["expected_order_holds"] else "DOES NOT HOLD"))
+    for arm, m in sorted(e["arms_last_week"].items()):
+        print(f"  arm {arm:<14} last week: {m['known_topics_per_user']:.2f} known topics per user, "
+              f"{m['new_interest_per_active_user']:.2f} new interests per active user")
     print(f"outputs: {lab['dir']}/ and {args.out}/demo-summary.json")
     return 0
