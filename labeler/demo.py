@@ -309,20 +309,17 @@ def _evaluate_policies(out, scenario, tax, label_cfg, embedder) -> dict:
     two weeks; and the experiment arms' interest growth over the whole log."""
     import pandas as pd
 
-    from .metrics import evaluate
+    from .metrics import evaluate, item_vectors
     from .policies import recommend
-    from .taxonomy.build import embed_items
     ev = scenario.interactions
     weeks = max(1, int((ev["ts"].max() - ev["ts"].min()).days // 7))
     at = pd.Timestamp(ev["ts"].min()).normalize() + pd.Timedelta(days=7 * max(1, min(8, weeks - 2)))
     history = ev[ev["ts"] < at]
     users = sorted(set(history["user_id"]) & set(ev.loc[ev["ts"] >= at, "user_id"]))
     recs = recommend(history, tax, users, at, k=10)
-    vectors, _ = embed_items(scenario.items, tax.manifest["config"], embedder=embedder or tax.embedder(),
-                             progress=False)
-    item_vectors = dict(zip(scenario.items["item_id"], vectors))
+    vectors = item_vectors(scenario.items, tax, embedder=embedder)
     res = evaluate(recs, ev, tax, k=10, group_by="policy", control="popularity", horizon_days=14,
-                   label_config=label_cfg.model_copy(update={"label_from": None}), item_vectors=item_vectors,
+                   label_config=label_cfg.model_copy(update={"label_from": None}), item_vectors=vectors,
                    n_boot=500)
     res.write(out / "evaluation")
     shown = ("precision", "ndcg", "ild_topic", "ild_embedding", "novelty", "unexpectedness", "serendipity")

@@ -103,6 +103,25 @@ def bootstrap_mean(sums: np.ndarray, counts: np.ndarray, n_boot: int = 1000, see
     return float(est), float(lo), float(hi)
 
 
+def item_vectors(items: pd.DataFrame, tax, taxonomy_config=None, embedder=None) -> dict:
+    """{item_id: unit vector} for the embedding diversity: the learned taxonomy's own model and
+    settings, or the configured model for an editorial taxonomy (both through the embedding cache)."""
+    from .config import TaxonomyConfig
+    from .embed import SentenceEmbedder
+    from .tables import normalize_items
+    from .taxonomy.build import embed_items
+    if tax.kind == "learned":
+        cfg = tax.manifest["config"]
+        embedder = embedder or tax.embedder()
+    else:
+        tc = taxonomy_config or TaxonomyConfig()
+        cfg = tc.model_dump()
+        embedder = embedder or SentenceEmbedder(tc.model, tc.model_path, tc.batch_size)
+    its, _ = normalize_items(items, text_columns=tuple(cfg["text_columns"]))
+    vectors, _ = embed_items(its, cfg, embedder=embedder, progress=False)
+    return dict(zip(its["item_id"], vectors))
+
+
 # -- the evaluation ------------------------------------------------------------------------------
 @dataclasses.dataclass
 class Evaluation:

@@ -188,3 +188,19 @@ def test_cli_evaluate(cli, tmp_path):
                          "--taxonomy", tmp_path / "tax", "--k", "2", "--group-by", "arm", "--out", tmp_path / "o")
     assert code == 0, err
     assert "serendipity" in out and (tmp_path / "o" / "report.html").exists()
+
+
+def test_embedding_diversity_from_a_learned_taxonomy(hashing):
+    """item_vectors embeds with the learned taxonomy's own model; ILD by embedding is then filled."""
+    from labeler import TaxonomyConfig, build_taxonomy
+    from labeler.metrics import item_vectors
+    words = ["sourdough bread", "bonsai wiring", "knitting socks"]
+    items = pd.DataFrame({"item_id": [f"i{k}" for k in range(60)], "title": [f"{words[k % 3]} {k}" for k in range(60)]})
+    tax = build_taxonomy(items, TaxonomyConfig(min_cluster_size=5), embedder=hashing, progress=False)
+    vec = item_vectors(items, tax)
+    assert len(vec) == 60
+    log = pd.DataFrame({"user_id": ["u1"] * 2, "item_id": ["i0", "i1"], "ts": [T0 - pd.Timedelta(days=1), T0 + pd.Timedelta(hours=1)]})
+    recs = pd.DataFrame({"user_id": "u1", "ts": T0, "item_id": ["i1", "i2", "i3"], "rank": [1, 2, 3]})
+    res = evaluate(recs, log, tax, k=3, item_vectors=vec, n_boot=20, growth=False)
+    expected = ild_embedding(np.vstack([vec["i1"], vec["i2"], vec["i3"]]))
+    assert res.per_list["ild_embedding"].iloc[0] == pytest.approx(expected)

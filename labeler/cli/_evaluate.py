@@ -20,6 +20,8 @@ def register(sub) -> None:
     p.add_argument("--horizon-days", type=float, default=7.0,
                    help="relevance: engaged interactions within this many days after the request (default 7)")
     p.add_argument("--level", type=int, help="taxonomy level for topic metrics (default: the finest)")
+    p.add_argument("--items", help="items table: embeds items (learned taxonomy's model, cached) for the "
+                                   "embedding diversity")
     p.add_argument("--out", required=True, help="output folder: metrics.parquet/.csv, summary.json, report.html")
     add_common(p)
     p.set_defaults(run=run)
@@ -28,9 +30,14 @@ def register(sub) -> None:
 def run(args) -> int:
     from ..metrics import evaluate
     cfg = job_config(args)
-    res = evaluate(read_table(Path(args.recs)), read_table(Path(args.interactions)), Taxonomy.load(args.taxonomy),
+    tax = Taxonomy.load(args.taxonomy)
+    vectors = None
+    if args.items:
+        from ..metrics import item_vectors
+        vectors = item_vectors(read_table(Path(args.items)), tax, cfg.taxonomy)
+    res = evaluate(read_table(Path(args.recs)), read_table(Path(args.interactions)), tax,
                    k=args.k, group_by=args.group_by, control=args.control, horizon_days=args.horizon_days,
-                   label_config=cfg.labels, level=args.level)
+                   label_config=cfg.labels, level=args.level, item_vectors=vectors)
     out = res.write(args.out)
     t = res.table[res.table["kind"] == "mean"]
     groups = sorted(t["group"].unique())
