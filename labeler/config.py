@@ -118,6 +118,13 @@ class EngineConfig(_Strict):
     memory_limit: str = "4GB"
     temp_dir: str | None = None
     threads: int | None = Field(None, ge=1)
+    # Spark only (also read from the environment: SPARK_MASTER)
+    spark_master: str | None = Field(None, description="e.g. 'local[4]', 'spark://host:7077', 'yarn'; "
+                                     "default $SPARK_MASTER or local[*]")
+    executor_memory: str | None = None
+    driver_memory: str | None = None
+    shuffle_partitions: int = Field(64, ge=1)
+    spark_conf: dict[str, str] = Field(default_factory=dict, description="any other spark.* settings")
 
 
 class RunConfig(_Strict):

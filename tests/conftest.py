@@ -35,3 +35,37 @@ def cli():
 def hashing():
     from labeler.embed import HashingEmbedder
     return HashingEmbedder(128)
+
+
+def _have_spark() -> bool:
+    import importlib.util
+    import shutil
+    return importlib.util.find_spec("pyspark") is not None and shutil.which("java") is not None
+
+
+ENGINES = ["duckdb", pytest.param("spark", marks=[pytest.mark.spark, pytest.mark.skipif(
+    not _have_spark(), reason="PySpark or Java missing (install the 'spark' extra)")])]
+
+
+@pytest.fixture(scope="session")
+def spark_engine():
+    """One local Spark engine for the whole test session (2 cores, few shuffle partitions)."""
+    from labeler.config import EngineConfig
+    from labeler.engines import make_engine
+    return make_engine(EngineConfig(engine="spark", spark_master="local[2]", shuffle_partitions=4,
+                                    driver_memory="2g"))
+
+
+@pytest.fixture(params=ENGINES)
+def engine_name(request):
+    return request.param
+
+
+@pytest.fixture
+def on_engine(engine_name, request, monkeypatch):
+    """Make label_interactions / build_footprints / plan_labels run on the parametrized engine."""
+    if engine_name == "spark":
+        eng = request.getfixturevalue("spark_engine")
+        import labeler.labelling as labelling
+        monkeypatch.setattr(labelling, "make_engine", lambda *a, **k: eng)
+    return engine_name

@@ -10,6 +10,12 @@ import pytest
 from labeler import LabelConfig, build_footprints, label_interactions
 from labelcases import T0, log, rows, taxonomy
 
+@pytest.fixture(autouse=True)
+def _each_engine(on_engine):
+    """Every golden case runs on DuckDB and on Spark (local mode): no expected differences."""
+    return on_engine
+
+
 TAX = taxonomy({"k1": [("knit", 1.0)], "k2": [("knit", 1.0)], "b1": [("bonsai", 1.0)],
                 "b2": [("bonsai", 1.0)], "s1": [("bread", 1.0)],
                 "m1": [("knit", 0.9), ("bonsai", 0.8)]})

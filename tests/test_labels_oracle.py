@@ -67,7 +67,7 @@ def test_movielens_published_facts(movielens):
 
 @pytest.mark.external
 @pytest.mark.parametrize("name", list(CONFIGS))
-def test_movielens_labels_equal_the_sql_oracle(movielens, name):
+def test_movielens_labels_equal_the_sql_oracle(movielens, name, on_engine):
     """Labels on MovieLens 100K (genres as topics, rating as engagement) equal the DuckDB SQL oracle row for row."""
     ratings, movies = movielens
     # genre ids are the genre names themselves, so no_boost_topics can name them
