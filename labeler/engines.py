@@ -130,7 +130,10 @@ class SparkEngine(Engine):
             conf = {"spark.sql.session.timeZone": "UTC", "spark.ui.showConsoleProgress": "false",
                     "spark.sql.shuffle.partitions": str(cfg.shuffle_partitions),
                     "spark.sql.execution.arrow.pyspark.enabled": "true",
-                    "spark.sql.adaptive.enabled": "true", "spark.sql.adaptive.skewJoin.enabled": "true"}
+                    "spark.sql.adaptive.enabled": "true", "spark.sql.adaptive.skewJoin.enabled": "true",
+                    # item topics (one row per item and level) are broadcast to every task when small
+                    "spark.sql.autoBroadcastJoinThreshold": str(256 * 2**20),
+                    "spark.sql.parquet.outputTimestampType": "TIMESTAMP_MICROS"}
             if cfg.executor_memory:
                 conf["spark.executor.memory"] = cfg.executor_memory
             if cfg.driver_memory:
@@ -162,6 +165,21 @@ class SparkEngine(Engine):
         self.session.read.option("recursiveFileLookup", "true").parquet(*paths).createOrReplaceTempView(name)
         return self.con.table(name)
 
+    def write_partitioned(self, expr, root: Path, sort_keys, schema: pa.Schema) -> int:
+        """Write ``expr`` (with a string ``date`` column) as Parquet under ``root/date=.../`` from
+        the executors: one task per date, rows sorted by ``sort_keys`` (nulls last), columns cast
+        to ``schema``. Returns the row count."""
+        from pyspark.sql import functions as F
+        sdf = self.session.sql(self.con.compile(expr))
+        casts = {f.name: _spark_type(f.type) for f in schema}
+        sdf = sdf.select(*[F.col(c).cast(casts[c]).alias(c) if c in casts else F.col(c) for c in sdf.columns])
+        order = [F.col("date").asc()] + [F.col(k).asc_nulls_last() for k in sort_keys]
+        sdf = sdf.repartition("date").sortWithinPartitions(*order).persist()
+        n = sdf.count()
+        sdf.select(*schema.names, "date").write.partitionBy("date").parquet(str(root))
+        sdf.unpersist()
+        return n
+
     def content_hash(self, expr, columns, extra: str = "") -> str:
         """The same canonical row hash as DuckDBEngine.content_hash, in Spark SQL."""
         view = f"_hash_{uuid.uuid4().hex[:8]}"
@@ -170,7 +188,7 @@ class SparkEngine(Engine):
         parts = []
         for name, dtype in sub.schema().items():
             col = f"`{name}`"
-            if dtype.is_floating():
+            if dtype.is_floating() or dtype.is_decimal():
                 txt = f"format_string('%.9f', CAST({col} AS DOUBLE))"
             elif dtype.is_boolean():
                 txt = f"CAST(CAST({col} AS INT) AS STRING)"
@@ -184,6 +202,13 @@ class SparkEngine(Engine):
         n, hi, lo = self.session.sql(
             f"SELECT count(*), {half(1)}, {half(17)} FROM (SELECT md5({row}) AS h FROM {view})").collect()[0]
         return hashlib.sha256(f"{extra}\x00{n}\x00{int(hi or 0)}\x00{int(lo or 0)}".encode()).hexdigest()
+
+
+def _spark_type(t: pa.DataType) -> str:
+    if pa.types.is_timestamp(t):
+        return "timestamp"
+    return {pa.string(): "string", pa.int32(): "int", pa.int64(): "bigint", pa.float64(): "double",
+            pa.bool_(): "boolean"}.get(t, "string")
 
 
 def engine_error(exc: BaseException) -> EngineError | None:

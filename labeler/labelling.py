@@ -170,7 +170,13 @@ class LabelRun:
         self.materialize()
         tmp = out / f".tmp-{uuid.uuid4().hex}"
         tmp.mkdir()
-        n = _write_partitioned(self, tmp / "labels")
+        if hasattr(self.engine, "write_partitioned"):  # a distributed engine writes from its workers
+            t = self.labels
+            t = t.mutate(date=t.ts.date().cast("string"), taxonomy_version=ibis.literal(self.taxonomy_version),
+                         labels_version=ibis.literal(self.labels_version))
+            n = self.engine.write_partitioned(t, tmp / "labels", list(SORT_KEYS), LABELS_SCHEMA)
+        else:
+            n = _write_partitioned(self, tmp / "labels")
         fp = self.footprints_arrow()
         pq.write_table(fp, tmp / "footprints.parquet", row_group_size=ROW_GROUP)
         summary = self.summary()

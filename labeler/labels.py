@@ -155,7 +155,8 @@ def label_rows(rows: ir.Table, counts: ir.Table, cfg: LabelConfig, single_topic:
     boosted = is_new & (g.engagement > 0) & (g.blocked.fill_null(0) == 0)
     if cfg.boost_on == "discovery":
         boosted = boosted & engaged
-    multiplier = ibis.ifelse(boosted, ibis.literal(float(cfg.multiplier)), ibis.literal(1.0))
+    multiplier = ibis.ifelse(boosted, ibis.literal(float(cfg.multiplier), type="float64"),
+                             ibis.literal(1.0, type="float64"))
     out = g.mutate(topic_id=topic, engaged=engaged, discovery=is_new & engaged,
                    reward_multiplier=multiplier, shaped_reward=g.engagement * multiplier)
     if cfg.label_from is not None:
