@@ -87,6 +87,8 @@ class LabelConfig(_Strict):
     event_types: tuple[str, ...] | None = None
     label_from: dt.datetime | None = None
     no_boost_topics: tuple[str, ...] = ()
+    max_user_events: int | None = Field(None, ge=1, description="set aside users with more interactions "
+                                        "than this (bots, shared devices): no labels, no footprint, counted")
 
     @field_validator("label_from")
     @classmethod

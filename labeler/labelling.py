@@ -26,8 +26,8 @@ from . import __version__
 from .config import InputConfig, LabelConfig
 from .engines import Engine, make_engine
 from .intake import interactions_table, item_topics_table
-from .labels import each_interaction_once, footprint_rows, known_topic_counts, known_transitions, label_rows, \
-    prepare, topic_rows, user_history, with_support
+from .labels import each_interaction_once, footprint_rows, heavy_users, known_topic_counts, known_transitions, \
+    label_rows, prepare, topic_rows, user_history, with_support
 from .tables import FOOTPRINTS_COLUMNS, LABEL_VALUES, LABELS_COLUMNS, Intake
 
 log = logging.getLogger(__name__)
@@ -66,10 +66,11 @@ class LabelRun:
     intake: Intake
     as_of: Any = None
     materialized: bool = False
+    heavy: Any = None      # Ibis table: users set aside by max_user_events (None: no limit)
 
     @functools.cached_property
     def counts(self) -> dict[str, int]:
-        return _intake_counts(self.engine, self.ev, self.base, self.config, self.intake)
+        return _intake_counts(self.engine, self.ev, self.base, self.config, self.intake, self.heavy)
 
     @property
     def as_of_us(self) -> int | None:
@@ -271,15 +272,19 @@ def plan_labels(interactions, taxonomy, config: LabelConfig | None = None, *,
     eng = engine or make_engine()
     ev, intake = interactions_table(eng, interactions, input_config, source)
     it, levels, has_valid, single_topic = item_topics_table(eng, taxonomy, cfg)
-    base = topic_rows(prepare(ev, cfg), it, levels, has_valid).cache()
+    prepared, heavy = prepare(ev, cfg), None
+    if cfg.max_user_events is not None:  # one user's history is one ordered sequence: bots stall a task
+        heavy = heavy_users(prepared, cfg).cache()
+        prepared = prepared.anti_join(heavy, "user_id")
+    base = topic_rows(prepared, it, levels, has_valid).cache()
     transitions = known_transitions(base, cfg)
     labels = label_rows(with_support(base, cfg), known_topic_counts(base, transitions), cfg, single_topic)
     version = hashlib.sha256("\x00".join([taxonomy.version, cfg.canonical_json(), intake.content_hash,
                                           __version__]).encode()).hexdigest()
-    return LabelRun(eng, cfg, taxonomy.version, version, labels, base, transitions, ev, intake, as_of)
+    return LabelRun(eng, cfg, taxonomy.version, version, labels, base, transitions, ev, intake, as_of, heavy=heavy)
 
 
-def _intake_counts(eng, ev, rows, cfg, intake: Intake) -> dict[str, int]:
+def _intake_counts(eng, ev, rows, cfg, intake: Intake, heavy=None) -> dict[str, int]:
     """What preparing the log set aside, from the topic rows (each interaction once per level at pos 0)."""
     n_typed = intake.rows_in
     if cfg.event_types is not None:
@@ -288,8 +293,14 @@ def _intake_counts(eng, ev, rows, cfg, intake: Intake) -> dict[str, int]:
     once = each_interaction_once(rows)
     stats = eng.to_pandas(once.aggregate(n=once.count(), mx=once.ts_us.max()))
     n_out = int(stats["n"].iloc[0])
-    return {"dropped_event_type": intake.rows_in - n_typed, "duplicate_events_collapsed": n_typed - n_out,
-            "interactions_labelled": n_out, "max_ts_us": int(stats["mx"].iloc[0]) if n_out else None}
+    set_aside = {"users_over_max_user_events": 0, "interactions_of_those_users": 0}
+    if heavy is not None:
+        h = eng.to_pandas(heavy.aggregate(u=heavy.count(), n=heavy.events.sum()))
+        set_aside = {"users_over_max_user_events": int(h["u"].iloc[0] or 0),
+                     "interactions_of_those_users": int(h["n"].iloc[0] or 0)}
+    return {"dropped_event_type": intake.rows_in - n_typed,
+            "duplicate_events_collapsed": n_typed - n_out - set_aside["interactions_of_those_users"],
+            **set_aside, "interactions_labelled": n_out, "max_ts_us": int(stats["mx"].iloc[0]) if n_out else None}
 
 
 def label_interactions(interactions, taxonomy, config: LabelConfig | None = None, **kwargs) -> pd.DataFrame:

@@ -45,6 +45,12 @@ def prepare(ev: ir.Table, cfg: LabelConfig) -> ir.Table:
     return ev.mutate(history_len=ibis.rank().over(group_by=ev.user_id, order_by=ev.ts_us))
 
 
+def heavy_users(ev: ir.Table, cfg: LabelConfig) -> ir.Table:
+    """(user_id, events): users with more than ``max_user_events`` prepared interactions."""
+    counts = ev.group_by("user_id").aggregate(events=ev.count())
+    return counts.filter(counts.events > cfg.max_user_events)
+
+
 def topic_rows(ev: ir.Table, item_topics: ir.Table, levels: ir.Table, as_of: bool) -> ir.Table:
     """One row per (interaction, level, topic valid at its time); topic_id null when unplaced.
 

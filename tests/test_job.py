@@ -433,3 +433,16 @@ def test_rebuild_taxonomy_switches_only_when_the_gate_passes(tmp_path, scenario,
     else:
         assert "flip_share" in refresh["reason"]
         assert after["taxonomy"] == before["taxonomy"]
+
+
+def test_max_user_events_makes_every_run_full_and_says_why(tmp_path, scenario):
+    """A user crossing max_user_events loses every earlier label: the job cannot be incremental
+    with that setting, recomputes in full, and the manifest says so; it still equals a fresh run."""
+    root, dates = setup_root(tmp_path, scenario, 20)
+    cfg = make_config(root, labels={"max_user_events": 60})
+    run_job(cfg)
+    write_days(scenario[1], root / "interactions", dates[20:])
+    m = run_job(cfg).manifest
+    assert m["mode"] == "full" and "max_user_events" in m["why"]
+    run_job(make_config(root, work="fresh", labels={"max_user_events": 60}))
+    assert_same_outputs(root / "work", root / "fresh")

@@ -199,3 +199,18 @@ def test_footprint_forgets_outside_memory():
     fp = build_footprints(log(("u", "k1", 0), ("u", "b1", 3 * 24 * 60)), TAX, LabelConfig(memory_days=2))
     got = {r.topic_id: r.known for r in fp.itertuples()}
     assert got == {"knit": False, "bonsai": True}
+
+
+def test_users_over_max_user_events_are_set_aside_and_counted():
+    """max_user_events=2: 'bot' has 3 interactions and gets no labels and no footprint; 'u' keeps
+    hers; the summary counts the user and the interactions set aside (duplicates stay separate)."""
+    from labeler.labelling import plan_labels
+    events = log(("bot", "k1", 0), ("bot", "k2", 1), ("bot", "b1", 2), ("u", "k1", 0), ("u", "b1", 5),
+                 ("u", "b1", 5))
+    run = plan_labels(events, TAX, LabelConfig(max_user_events=2))
+    labels = run.labels_frame()
+    assert set(labels["user_id"]) == {"u"}
+    assert set(run.footprints_frame()["user_id"]) == {"u"}
+    counts = run.counts
+    assert counts["users_over_max_user_events"] == 1 and counts["interactions_of_those_users"] == 3
+    assert counts["duplicate_events_collapsed"] == 1 and counts["interactions_labelled"] == 2

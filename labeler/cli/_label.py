@@ -38,7 +38,8 @@ def print_summary(summary: dict, out: str) -> None:
     print(f"labelled {inp['interactions_labelled']} interactions of {summary['users']} users "
           f"(taxonomy {summary['taxonomy_version'][:12]}, labels {summary['labels_version'][:12]})")
     skipped = {k: v for k, v in inp.items() if k in ("dropped_event_type", "duplicate_events_collapsed",
-                                                     "interactions_on_items_without_topics") and v}
+                                                     "interactions_on_items_without_topics",
+                                                     "users_over_max_user_events") and v}
     if skipped:
         print("  set aside or flagged: " + ", ".join(f"{k}={v}" for k, v in skipped.items()))
     print(f"  {'level':>5} {'rows':>9} {'in_profile':>11} {'new_interest':>13} {'cold_start':>11} "

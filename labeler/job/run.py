@@ -294,6 +294,9 @@ class _Run:
             return "full", "label settings changed since the last run"
         if state.get("input_config") != json.loads(self.cfg.input.canonical_json()):
             return "full", "input settings changed since the last run"
+        if self.cfg.labels.max_user_events is not None:
+            return "full", ("labels.max_user_events is set: a user crossing the limit loses every earlier "
+                            "label, so each run recomputes in full")
         if state.get("tool_version") != __version__:
             return "full", f"tool version changed ({state.get('tool_version')} -> {__version__})"
         if not (self.work / "outputs" / state["generation"]).is_dir():
