@@ -112,3 +112,14 @@ def test_demo_small_runs_every_stage(cli, tmp_path):
     assert set(evaluation["policies"]) == {"popularity", "in_profile", "explore_mix"}
     assert evaluation["expected_order_holds"] is True
     assert (tmp_path / "d" / "evaluation" / "report.html").exists()
+
+
+def test_readme_configuration_example_is_a_valid_job_file():
+    """The TOML block under README 'Configuration' validates as a JobConfig."""
+    import tomllib
+    from pathlib import Path
+    from labeler.config import JobConfig, validate_config
+    text = (Path(__file__).resolve().parent.parent / "README.md").read_text()
+    block = text.split("## Configuration", 1)[1].split("```toml\n", 1)[1].split("```", 1)[0]
+    cfg = validate_config(JobConfig, tomllib.loads(block))
+    assert cfg.run.lookback_partitions == 3 and cfg.engine.shuffle_partitions == 64
