@@ -172,12 +172,18 @@ class Store:
         history, rows = self._user(str(user_id))
         known = _known_set(rows, at_us, self.config)
         levels = self._levels(level)
-        out = []
+        out, decided, cfg, none = [], {}, self.config, {}
         for item in map(str, item_ids):
+            per_level = items.get(item, none)
             for lv in levels:
-                label, topic = _classify_one(self._topics_at(items.get(item, {}).get(lv), at_us), lv, known,
-                                             history, self.config)
-                out.append(Classification(item, lv, label, topic, names.get(topic) if topic else None))
+                periods = per_level.get(lv)
+                topics = periods[-1][1] if periods and periods[-1][0] <= at_us else self._topics_at(periods, at_us)
+                key = (lv, topics)
+                got = decided.get(key)  # items sharing topics share the answer within one call
+                if got is None:
+                    label, topic = _classify_one(topics, lv, known, history, cfg)
+                    got = decided[key] = (label, topic, names.get(topic) if topic else None)
+                out.append(Classification(item, lv, *got))
         return out
 
     def _at(self, at) -> int:
