@@ -85,18 +85,7 @@ class DuckDBEngine(Engine):
         """
         view = f"_hash_{uuid.uuid4().hex[:8]}"
         self.con.create_view(view, expr.select(*columns), overwrite=True)
-        schema = expr.select(*columns).schema()
-        parts = []
-        for name, dtype in schema.items():
-            col = f'"{name}"'
-            if dtype.is_floating():
-                txt = f"printf('%.9f', {col})"
-            elif dtype.is_boolean():
-                txt = f"CAST(CAST({col} AS INTEGER) AS VARCHAR)"
-            else:
-                txt = f"CAST({col} AS VARCHAR)"
-            parts.append(f"COALESCE({txt}, '\\N')")
-        row = " || chr(31) || ".join(parts)
+        row = canonical_row(expr.select(*columns).schema(), "duckdb")
         n, hi, lo = self.raw_sql(
             f"SELECT count(*), sum(md5_number_upper(s)::HUGEINT), sum(md5_number_lower(s)::HUGEINT) "
             f"FROM (SELECT {row} AS s FROM {view})").fetchone()
@@ -185,23 +174,36 @@ class SparkEngine(Engine):
         view = f"_hash_{uuid.uuid4().hex[:8]}"
         sub = expr.select(*columns)
         self.session.sql(self.con.compile(sub)).createOrReplaceTempView(view)
-        parts = []
-        for name, dtype in sub.schema().items():
-            col = f"`{name}`"
-            if dtype.is_floating() or dtype.is_decimal():
-                txt = f"format_string('%.9f', CAST({col} AS DOUBLE))"
-            elif dtype.is_boolean():
-                txt = f"CAST(CAST({col} AS INT) AS STRING)"
-            else:
-                txt = f"CAST({col} AS STRING)"
-            parts.append(f"COALESCE({txt}, '\\\\N')")
-        row = " || chr(31) || ".join(parts)
+        row = canonical_row(sub.schema(), "spark")
         def half(start: int) -> str:  # DuckDB reads each 8-byte half of the digest little-endian
             rev = ", ".join(f"substr(h, {start + 2 * b}, 2)" for b in range(7, -1, -1))
             return f"sum(CAST(conv(concat({rev}), 16, 10) AS DECIMAL(38, 0)))"
         n, hi, lo = self.session.sql(
             f"SELECT count(*), {half(1)}, {half(17)} FROM (SELECT md5({row}) AS h FROM {view})").collect()[0]
         return hashlib.sha256(f"{extra}\x00{n}\x00{int(hi or 0)}\x00{int(lo or 0)}".encode()).hexdigest()
+
+
+_DIALECTS = {  # quoting, float formatting, integer and text types, the null marker
+    "duckdb": ('"{}"', "printf('%.9f', CAST({} AS DOUBLE))", "INTEGER", "VARCHAR", "'\\N'"),
+    "spark": ("`{}`", "format_string('%.9f', CAST({} AS DOUBLE))", "INT", "STRING", "'\\\\N'"),
+}
+
+
+def canonical_row(schema, dialect: str) -> str:
+    """SQL rendering one row of ``schema`` as text, alike on every engine: integers in decimal,
+    floats with 9 decimals, booleans as 0/1, null as \\N, fields joined by chr(31)."""
+    quote, floats, int_type, text_type, null = _DIALECTS[dialect]
+    parts = []
+    for name, dtype in schema.items():
+        col = quote.format(name)
+        if dtype.is_floating() or dtype.is_decimal():
+            txt = floats.format(col)
+        elif dtype.is_boolean():
+            txt = f"CAST(CAST({col} AS {int_type}) AS {text_type})"
+        else:
+            txt = f"CAST({col} AS {text_type})"
+        parts.append(f"COALESCE({txt}, {null})")
+    return " || chr(31) || ".join(parts)
 
 
 def _spark_type(t: pa.DataType) -> str:
