@@ -49,15 +49,6 @@ def synthetic(users: int, per_user: int, seed: int = 0):
     return fp, Taxonomy.from_tables(top, it, name="bench-store"), items
 
 
-def current_rss_mib() -> float:
-    """Resident memory now (not the peak: the build in this process would dominate a peak)."""
-    with open("/proc/self/status") as f:
-        for line in f:
-            if line.startswith("VmRSS:"):
-                return int(line.split()[1]) / 1024
-    return float("nan")
-
-
 def pct(xs, q):
     return float(np.percentile(np.asarray(xs) * 1000, q))
 
@@ -79,7 +70,6 @@ def main() -> None:
         del fp
         import gc
         gc.collect()
-        rss0 = current_rss_mib()
         t0 = time.perf_counter()
         store = open_store(Path(d) / "s")
         print(f"open: {1000 * (time.perf_counter() - t0):.1f} ms")
@@ -106,8 +96,16 @@ def main() -> None:
         store.classify_many(pairs)
         secs = time.perf_counter() - t0
         print(f"classify_many: {len(pairs) / secs:,.0f} pairs/s")
-        print(f"reader RSS growth after open and queries: {current_rss_mib() - rss0:.0f} MiB "
-              "(current RSS, after the build's memory was released)")
+        # a reader in its own process: its peak RSS is the reader's alone, not the build's
+        probe = (f"import resource, numpy as np; from labeler import open_store; s = open_store({str(Path(d) / 's')!r}); "
+                 f"items = {list(map(str, items[:5000]))!r}; rng = np.random.default_rng(2)\n"
+                 f"for k in range(200): s.footprint(f'u{{k:07d}}'); s.classify(f'u{{k:07d}}', list(rng.choice(items, 500)))\n"
+                 "print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024)")
+        import subprocess
+        import sys
+        peak = float(subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True,
+                                    check=True).stdout.strip().splitlines()[-1])
+        print(f"reader peak RSS (own process: import, open, 200 footprints and 200 classify calls): {peak:.0f} MiB")
 
 
 if __name__ == "__main__":
