@@ -97,10 +97,11 @@ def main() -> None:
         secs = time.perf_counter() - t0
         print(f"classify_many: {len(pairs) / secs:,.0f} pairs/s")
         # a reader in its own process: its peak RSS is the reader's alone, not the build's
-        probe = (f"import resource, numpy as np; from labeler import open_store; s = open_store({str(Path(d) / 's')!r}); "
+        probe = (f"import numpy as np; from labeler import open_store; s = open_store({str(Path(d) / 's')!r}); "
                  f"items = {list(map(str, items[:5000]))!r}; rng = np.random.default_rng(2)\n"
                  f"for k in range(200): s.footprint(f'u{{k:07d}}'); s.classify(f'u{{k:07d}}', list(rng.choice(items, 500)))\n"
-                 "print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024)")
+                 # VmHWM: this process's own peak (ru_maxrss would carry the forking parent's over exec)
+                 "print([int(l.split()[1]) for l in open('/proc/self/status') if l.startswith('VmHWM')][0] / 1024)")
         import subprocess
         import sys
         peak = float(subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True,
