@@ -198,7 +198,6 @@ def sample_users(interactions, n: int):
     import hashlib
     from .intake import Staged
     if isinstance(interactions, Staged):
-        import duckdb  # noqa: F401  (the table lives on the caller's engine)
         t = interactions.table
         users = sorted(t.select("user_id").distinct().execute()["user_id"],
                        key=lambda u: hashlib.sha256(str(u).encode()).hexdigest())[:n]

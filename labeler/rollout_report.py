@@ -98,7 +98,6 @@ def flip_figure(result, level: int):
 
 
 def size_figure(result, level: int):
-    c = result.contingency[result.contingency["level"] == level]
     tmap = result.topic_map[result.topic_map["level"] == level]
     cur = tmap.loc[tmap["side"] == "current", "size"].to_numpy()
     cand = np.asarray(result.candidate_sizes.get(level, []))
@@ -113,7 +112,6 @@ def size_figure(result, level: int):
     ax.tick_params(labelsize=8)
     ax.legend(fontsize=8, frameon=False)
     ax.set_title(f"Topic sizes at level {level}", fontsize=10)
-    del c
     return fig
 
 
