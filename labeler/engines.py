@@ -41,9 +41,11 @@ class Engine:
         return self.con.create_table(name, data, temp=True)
 
     def read_parquet(self, path):
-        """A lazy table over one Parquet path (a glob allowed) or a list of paths."""
+        """A lazy table over a Parquet file, a folder of them (read recursively) or a list of files."""
         if isinstance(path, (list, tuple)):
             return self.con.read_parquet([str(p) for p in path])
+        if Path(path).is_dir():
+            return self.con.read_parquet(str(Path(path) / "**" / "*.parquet"))
         return self.con.read_parquet(str(path))
 
     def to_arrow(self, expr) -> pa.Table:
@@ -150,7 +152,6 @@ class SparkEngine(Engine):
     def read_parquet(self, path):
         paths = [str(p) for p in path] if isinstance(path, (list, tuple)) else [str(path)]
         name = f"_pq_{uuid.uuid4().hex[:8]}"
-        paths = [p.replace("/**/*.parquet", "") for p in paths]
         self.session.read.option("recursiveFileLookup", "true").parquet(*paths).createOrReplaceTempView(name)
         return self.con.table(name)
 

@@ -122,7 +122,7 @@ def _lazy_parquet(engine, path: Path, cfg: InputConfig, source: str):
     if not (pa.types.is_timestamp(ts_type) and ts_type.tz is not None and eng_ok):
         return None  # needs in-memory parsing (text or naive timestamps, text engagement)
     intake = Intake(source=source)
-    t = engine.read_parquet(path / "**" / "*.parquet" if path.is_dir() else path)
+    t = engine.read_parquet(path)
     cols = {"user_id": t.user_id.cast("string"), "item_id": t.item_id.cast("string"),
             "ts": t.ts.cast(ibis.dtype("timestamp('UTC', 6)"))}
     cols["engagement"] = t.engagement.cast("float64") if "engagement" in names else ibis.literal(1.0)
