@@ -255,7 +255,7 @@ def check_rollout(current, candidate, interactions, config: GateConfig | None = 
             agree[str(lv)].update(newly_unplaced=len((a - b) & universe), newly_placed=len((b - a) & universe))
     tmap = pd.concat([topic_map(current, candidate, lv) for lv in levels], ignore_index=True)
     impact, flips = label_impact(current, candidate, interactions,
-                                 LabelConfig(**{**(label_config or LabelConfig()).model_dump(), "levels": tuple(levels)}),
+                                 (label_config or LabelConfig()).model_copy(update={"levels": tuple(levels)}),
                                  window_days, engine)
     cur_topics = tmap[tmap["side"] == "current"]
     sizes = candidate.item_topics[candidate.item_topics["topic_id"].notna()].groupby(["level", "topic_id"]).size()
