@@ -116,6 +116,21 @@ class GenerationWriter:
         if len(self.dates_written) == 1:
             failpoints.hit("mid_labels_write")
 
+    def write_stream(self, batches) -> None:
+        """Write the re-labelled rows from Arrow batches ordered by a string ``_date`` column."""
+        pending, current = [], None
+        for batch in batches:
+            tb = pa.Table.from_batches([batch])
+            dates = tb.column("_date")
+            for date in pc.unique(dates).to_pylist():
+                if date != current and pending:
+                    self.write_date(current, pa.concat_tables(pending))
+                    pending = []
+                current = date
+                pending.append(tb.filter(pc.equal(dates, date)).drop_columns(["_date", "ts_us"]))
+        if pending:
+            self.write_date(current, pa.concat_tables(pending))
+
     def _finish(self, rows: pa.Table, date: str) -> pa.Table:
         n = rows.num_rows
         for level, label in zip(rows.column("level").to_pylist(), rows.column("label").to_pylist()):

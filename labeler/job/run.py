@@ -31,12 +31,11 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from .. import __version__
 from ..config import JobConfig
 from ..engines import make_engine
-from ..errors import ArtifactError, ConfigError, EngineError, InputError, RejectedError
+from ..errors import ConfigError, EngineError, InputError, RejectedError
 from ..intake import Staged as StagedInput
 from ..labelling import plan_labels
 from ..tables import normalize_items, read_table
@@ -46,10 +45,9 @@ from .lock import RunLock
 from .outputs import GenerationWriter, age_footprints, write_table
 from .partitions import DAY_US, Staged, discover, stage
 from .register import first_register, read_register, register_hash_by_day, taxonomy_view, text_hashes, update_register
+from .state import STATE_FORMAT, load_state, write_json
 
 log = logging.getLogger(__name__)
-
-STATE_FORMAT = "labeler-job-state/1"
 
 
 @dataclasses.dataclass
@@ -81,35 +79,6 @@ def run_job(config: JobConfig, *, full: bool = False, rebuild_taxonomy: bool = F
                 raise EngineError(f"{work}: disk full while writing ({exc.strerror}). Nothing was committed: "
                                   "the previous state and outputs are intact. Free space and run again.") from None
             raise
-
-
-def load_state(work: Path) -> dict | None:
-    p = work / "state.json"
-    if not p.exists():
-        return None
-    try:
-        state = json.loads(p.read_text())
-    except json.JSONDecodeError as exc:
-        raise ArtifactError(f"{p}: state file is not valid JSON ({exc}). It is written atomically, so this "
-                            "means it was edited or damaged; restore it or remove the work folder for a "
-                            "full rebuild.") from None
-    if state.get("format") != STATE_FORMAT:
-        raise ArtifactError(f"{p}: unknown state format {state.get('format')!r} (this tool writes {STATE_FORMAT}).")
-    return state
-
-
-def _write_json(path: Path, data: dict, point: str | None = None) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex}")
-    if point:
-        failpoints.hit(f"write_{point}")
-    with open(tmp, "w") as fh:
-        fh.write(json.dumps(data, indent=2, sort_keys=True) + "\n")
-        fh.flush()
-        os.fsync(fh.fileno())
-    if point:
-        failpoints.hit(f"mid_{point}_write")
-    os.replace(tmp, path)
 
 
 def _day(us: int) -> str:
@@ -196,10 +165,9 @@ class _Run:
         eng = make_engine(cfg.engine)
         files = [str(work / p.events) for _, p in sorted(parts.items()) if p.rows]
         ev = eng.read_parquet(files)
-        n_users = None
-        if users is not None:
-            n_users = len(users)
-            ut = eng.table(pa.table({"user_id": pa.array(users, pa.string())}), "relabel")
+        user_array = pa.array(users, pa.string()) if users is not None else None
+        if user_array is not None:
+            ut = eng.table(pa.table({"user_id": user_array}), "relabel")
             ev = ev.filter(ev.user_id.isin(ut.user_id))
         view = taxonomy_view(tax, register)
         staged = StagedInput(ev, source=cfg.interactions, rows=sum(p.rows for p in parts.values()),
@@ -211,26 +179,12 @@ class _Run:
 
         t0 = time.perf_counter()
         gen_name = f"gen-{seq:06d}"
-        writer = GenerationWriter(work / "outputs" / gen_name, prev_gen,
-                                  pa.array(users, pa.string()) if users is not None else None,
-                                  start_date, versions, tax.version)
+        writer = GenerationWriter(work / "outputs" / gen_name, prev_gen, user_array, start_date, versions,
+                                  tax.version)
         linked = writer.link_unchanged()
         t = run.labels
         t = t.filter(t.ts_us >= (start_us // DAY_US) * DAY_US) if start_us is not None else t
-        t = t.mutate(_date=t.ts.date().cast("string")).order_by("_date")
-        pending, current = [], None
-        for batch in eng.to_batches(t):
-            tb = pa.Table.from_batches([batch])
-            dates = tb.column("_date")
-            for date in pc.unique(dates).to_pylist():
-                piece = tb.filter(pc.equal(dates, date)).drop_columns(["_date", "ts_us"])
-                if date != current and pending:
-                    writer.write_date(current, pa.concat_tables(pending))
-                    pending = []
-                current = date
-                pending.append(piece)
-        if pending:
-            writer.write_date(current, pa.concat_tables(pending))
+        writer.write_stream(eng.to_batches(t.mutate(_date=t.ts.date().cast("string")).order_by("_date")))
         writer.finish_dates()
         lab = cfg.labels
         writer.write_people(run.footprints_arrow(), pa.Table.from_pandas(run.history_frame(), preserve_index=False),
@@ -253,7 +207,7 @@ class _Run:
         manifest.update(
             status="committed", generation=gen_name, watermark=pd.Timestamp(
                 watermark_us, unit="us", tz="UTC").isoformat(),
-            relabelled_users="all" if n_users is None else n_users,
+            relabelled_users="all" if users is None else len(users),
             relabelled_from=start_date, rows_in=int(sum(parts[n].rows for n in staged_new if n in parts)),
             quarantined=int(sum(parts[n].quarantined for n in staged_new if n in parts)),
             rows_out=counts, label_rows_written=writer.rows_written,
@@ -275,9 +229,9 @@ class _Run:
         manifest["durations_s"] = self.timings
         manifest["finished"] = dt.datetime.now(dt.timezone.utc).isoformat()
         path = self.work / "runs" / run_id / "manifest.json"
-        _write_json(path, manifest)
+        write_json(path, manifest)
         if commit:
-            _write_json(self.work / "state.json", state, point="state")
+            write_json(self.work / "state.json", state, point="state")
             failpoints.hit("after_state")
             self._clean(state)
         code = 1 if rejected else 0
@@ -372,13 +326,12 @@ class _Run:
         else:
             tax_dir = self.work / state["taxonomy"]["dir"]
             tax = Taxonomy.load(tax_dir)
-            register = read_register(self.work / state["register"])
-            first_seen = self._first_seen(state, register, items) if cfg.run.backfill_late_items else None
-            register, ch = update_register(register, tax, items, hashes, state["watermark_us"] + 1,
+            previous = read_register(self.work / state["register"])
+            first_seen = self._first_seen(state, previous, items) if cfg.run.backfill_late_items else None
+            register, ch = update_register(previous, tax, items, hashes, state["watermark_us"] + 1,
                                            first_seen, embedder=self.embedder)
             changes.update(new=len(ch.new), changed=len(ch.changed), placed=ch.placed, unplaced=ch.unplaced,
-                           unplaced_share=ch.unplaced_share,
-                           added_rows=int(len(register) - len(read_register(self.work / state["register"]))),
+                           unplaced_share=ch.unplaced_share, added_rows=int(len(register) - len(previous)),
                            first_seen=first_seen or {})
         self.register_rel = self._save_register(register)
         return tax, register, changes
@@ -530,11 +483,3 @@ class _Run:
 def _tombstones(store: Path) -> set[str]:
     from ..store.layout import tombstones
     return tombstones(store) if store.exists() else set()
-
-
-def current_outputs(work_dir) -> Path:
-    """The folder of the job's committed outputs (labels/, footprints.parquet, users.parquet)."""
-    state = load_state(Path(work_dir))
-    if state is None:
-        raise ArtifactError(f"{work_dir}: no committed run yet (no state.json). Run `labeler run --config ...`.")
-    return Path(work_dir) / "outputs" / state["generation"]
