@@ -14,6 +14,7 @@ import uuid
 from pathlib import Path
 
 import ibis
+import ibis.expr.datatypes as dt
 import pandas as pd
 import pyarrow as pa
 
@@ -21,6 +22,19 @@ from .config import EngineConfig
 from .errors import ConfigError, EngineError
 
 log = logging.getLogger(__name__)
+
+EPOCH = ibis.timestamp("1970-01-01T00:00:00+00:00")
+UTC_US = dt.Timestamp(timezone="UTC", scale=6)
+
+
+@ibis.udf.scalar.builtin(name="epoch_us")
+def _duckdb_epoch_us(ts: UTC_US) -> dt.int64:
+    """DuckDB's microseconds since the epoch."""
+
+
+@ibis.udf.scalar.builtin(name="unix_micros")
+def _spark_unix_micros(ts: UTC_US) -> dt.int64:
+    """Spark's microseconds since the epoch."""
 
 
 class Engine:
@@ -48,6 +62,10 @@ class Engine:
             return self.con.read_parquet(str(Path(path) / "**" / "*.parquet"))
         return self.con.read_parquet(str(path))
 
+    def epoch_us(self, ts):
+        """Microseconds since the epoch of a UTC timestamp column (``timestamp('UTC', 6)``)."""
+        return ts.delta(EPOCH, unit="microsecond")
+
     def to_arrow(self, expr) -> pa.Table:
         return self.con.to_pyarrow(expr)
 
@@ -72,6 +90,10 @@ class DuckDBEngine(Engine):
 
     def raw_sql(self, sql: str):
         return self.con.con.execute(sql)
+
+    def epoch_us(self, ts):
+        # the generic date difference costs about a tenth of a label run here
+        return _duckdb_epoch_us(ts)
 
     def to_batches(self, expr, rows: int = 65_536):
         """Stream the result as Arrow record batches (ibis 12's streaming predates duckdb 2.0)."""
@@ -148,6 +170,9 @@ class SparkEngine(Engine):
         arrow = arrow.replace_schema_metadata(None)
         self.session.createDataFrame(arrow).createOrReplaceTempView(name)
         return self.con.table(name)
+
+    def epoch_us(self, ts):
+        return _spark_unix_micros(ts)
 
     def read_parquet(self, path):
         paths = [str(p) for p in path] if isinstance(path, (list, tuple)) else [str(path)]

@@ -25,12 +25,11 @@ from .tables import INTERACTIONS_REQUIRED, Intake, normalize_interactions, requi
 
 log = logging.getLogger(__name__)
 
-EPOCH = ibis.timestamp("1970-01-01T00:00:00+00:00")
 _COLUMNS = ("user_id", "item_id", "ts", "engagement", "event_id", "event_type", "arm")
 
 
-def _with_ts_us(t):
-    return t.mutate(ts_us=t.ts.delta(EPOCH, unit="microsecond"))
+def _with_ts_us(engine, t):
+    return t.mutate(ts_us=engine.epoch_us(t.ts))
 
 
 @dataclasses.dataclass
@@ -51,7 +50,7 @@ def interactions_table(engine, data, input_config: InputConfig | None = None,
     if isinstance(data, Staged):
         intake = Intake(source=data.source, rows_in=data.rows, rows_out=data.rows,
                         content_hash=data.content_hash)
-        return _with_ts_us(data.table.select(*_COLUMNS)), intake
+        return _with_ts_us(engine, data.table.select(*_COLUMNS)), intake
     if isinstance(data, (str, os.PathLike)):
         path = Path(data)
         source = source or str(path)
@@ -71,7 +70,7 @@ def interactions_table(engine, data, input_config: InputConfig | None = None,
     intake.content_hash = frame_hash(df[list(_COLUMNS)])
     table = engine.table(pa.Table.from_pandas(df[list(_COLUMNS)], schema=_arrow_schema(),
                                               preserve_index=False), "interactions")
-    return _with_ts_us(table), intake
+    return _with_ts_us(engine, table), intake
 
 
 def frame_hash(df: pd.DataFrame) -> str:
@@ -155,7 +154,7 @@ def _lazy_parquet(engine, path: Path, cfg: InputConfig, source: str):
                                          for r in sample[list(INTERACTIONS_REQUIRED)].to_dict("records")])
     if "engagement" not in names:
         intake.note("no 'engagement' column: every interaction counts as 1.0")
-    return _with_ts_us(t), intake
+    return _with_ts_us(engine, t), intake
 
 
 def _clean_by_statistics(files: list[Path], columns: list[str]) -> set[str]:
