@@ -53,6 +53,8 @@ class LabelRun:
     """Planned label and footprint expressions over one engine, with what intake reported.
 
     Nothing runs until a result is asked for; intake counts are computed once, on first use.
+    The topic rows (``base``) are computed once into an engine table only when a result beyond
+    the labels needs them (footprints, counts, writing): asking for labels alone is one query.
     """
 
     engine: Engine
@@ -67,9 +69,22 @@ class LabelRun:
     as_of: Any = None
     materialized: bool = False
     heavy: Any = None      # Ibis table: users set aside by max_user_events (None: no limit)
+    single_topic: bool = False
+    base_shared: bool = False
+
+    def share_base(self) -> "LabelRun":
+        """Compute the topic rows once into an engine table, for results that read them again."""
+        if not self.base_shared:
+            self.base = self.base.cache()
+            self.transitions = known_transitions(self.base, self.config)
+            if not self.materialized:
+                self.labels = _label_expr(self.base, self.transitions, self.config, self.single_topic)
+            self.base_shared = True
+        return self
 
     @functools.cached_property
     def counts(self) -> dict[str, int]:
+        self.share_base()
         return _intake_counts(self.engine, self.ev, self.base, self.config, self.intake, self.heavy)
 
     @property
@@ -82,6 +97,7 @@ class LabelRun:
     @functools.cached_property
     def footprints(self):
         """Ibis table: footprints with known_since_us, as of ``as_of_us``."""
+        self.share_base()
         return footprint_rows(self.base, self.transitions, self.config, self.as_of_us)
 
     def materialize(self) -> "LabelRun":
@@ -91,6 +107,7 @@ class LabelRun:
         have released their memory before a sort starts.
         """
         if not self.materialized:
+            self.share_base()  # whoever reads labels several times reads footprints too
             self.labels = self.labels.cache()
             self.materialized = True
         return self
@@ -114,7 +131,7 @@ class LabelRun:
 
     def history_frame(self) -> pd.DataFrame:
         """user_id, history_len: each user's interactions up to ``as_of_us`` (unplaced ones included)."""
-        return self.engine.to_pandas(user_history(self.base, self.as_of_us))
+        return self.engine.to_pandas(user_history(self.share_base().base, self.as_of_us))
 
     def footprints_frame(self) -> pd.DataFrame:
         return self.footprints_arrow().to_pandas()
@@ -276,12 +293,17 @@ def plan_labels(interactions, taxonomy, config: LabelConfig | None = None, *,
     if cfg.max_user_events is not None:  # one user's history is one ordered sequence: bots stall a task
         heavy = heavy_users(prepared, cfg).cache()
         prepared = prepared.anti_join(heavy, "user_id")
-    base = topic_rows(prepared, it, levels, has_valid).cache()
+    base = topic_rows(prepared, it, levels, has_valid)
     transitions = known_transitions(base, cfg)
-    labels = label_rows(with_support(base, cfg), known_topic_counts(base, transitions), cfg, single_topic)
+    labels = _label_expr(base, transitions, cfg, single_topic)
     version = hashlib.sha256("\x00".join([taxonomy.version, cfg.canonical_json(), intake.content_hash,
                                           __version__]).encode()).hexdigest()
-    return LabelRun(eng, cfg, taxonomy.version, version, labels, base, transitions, ev, intake, as_of, heavy=heavy)
+    return LabelRun(eng, cfg, taxonomy.version, version, labels, base, transitions, ev, intake, as_of, heavy=heavy,
+                    single_topic=single_topic)
+
+
+def _label_expr(base, transitions, cfg: LabelConfig, single_topic: bool):
+    return label_rows(with_support(base, cfg), known_topic_counts(base, transitions), cfg, single_topic)
 
 
 def _intake_counts(eng, ev, rows, cfg, intake: Intake, heavy=None) -> dict[str, int]:
