@@ -45,6 +45,14 @@ def test_classify_candidates(tmp_path):
                    ("m1", "in_profile", "knit"), ("zz", "unplaced", None)]
 
 
+def test_preload_then_classify_gives_the_same_answers(tmp_path):
+    """preload() loads the item catalog up front and changes no answer."""
+    _publish(tmp_path)
+    lazy = open_store(tmp_path / "store").classify("ana", ["k1", "b1", "zz"])
+    eager = open_store(tmp_path / "store").preload().classify("ana", ["k1", "b1", "zz"])
+    assert eager == lazy
+
+
 def test_classify_many_matches_classify(tmp_path):
     """classify_many on a frame gives, row for row, what classify gives per user."""
     _publish(tmp_path)

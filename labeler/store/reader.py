@@ -128,6 +128,14 @@ class Store:
                                   _ts(r[7])) for r in sorted(rows, key=lambda r: (r[0], -r[2], r[1])))
         return Footprint(str(user_id), history, topics, self.watermark, self.manifest["taxonomy_version"], self.name)
 
+    def preload(self) -> "Store":
+        """Load the snapshot's item catalog now, so that the first ``classify`` is not the slow one.
+
+        A service calls this once after opening (and after a ``refresh`` that switched snapshots).
+        """
+        self._catalog()
+        return self
+
     def _catalog(self) -> tuple[dict, dict]:
         """Item topics and topic names of the snapshot, loaded once per snapshot and reader.
 
