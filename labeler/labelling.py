@@ -53,8 +53,9 @@ class LabelRun:
     """Planned label and footprint expressions over one engine, with what intake reported.
 
     Nothing runs until a result is asked for; intake counts are computed once, on first use.
-    The topic rows (``base``) are computed once into an engine table only when a result beyond
-    the labels needs them (footprints, counts, writing): asking for labels alone is one query.
+    The topic rows (``base``) are computed once into an engine table the first time anything
+    but the labels query reads them (``base``, ``transitions``, footprints, counts, writing):
+    asking for labels alone is one query.
     """
 
     engine: Engine
@@ -62,8 +63,8 @@ class LabelRun:
     taxonomy_version: str
     labels_version: str
     labels: Any            # Ibis table: labels with ts_us, unsorted
-    base: Any              # Ibis table: one row per (interaction, level, item topic)
-    transitions: Any       # Ibis table: when topics become known / forgotten
+    _base: Any             # Ibis table: one row per (interaction, level, item topic); see ``base``
+    _transitions: Any      # Ibis table: when topics become known / forgotten; see ``transitions``
     ev: Any                # Ibis table: the validated input
     intake: Intake
     as_of: Any = None
@@ -75,16 +76,24 @@ class LabelRun:
     def share_base(self) -> "LabelRun":
         """Compute the topic rows once into an engine table, for results that read them again."""
         if not self.base_shared:
-            self.base = self.base.cache()
-            self.transitions = known_transitions(self.base, self.config)
-            if not self.materialized:
-                self.labels = _label_expr(self.base, self.transitions, self.config, self.single_topic)
+            self._base = self._base.cache()
+            self._transitions = known_transitions(self._base, self.config)
+            self.labels = _label_expr(self._base, self._transitions, self.config, self.single_topic)
             self.base_shared = True
         return self
 
+    @property
+    def base(self):
+        """Ibis table: the topic rows, shared (computed once) from the first read on."""
+        return self.share_base()._base
+
+    @property
+    def transitions(self):
+        """Ibis table: (user_id, level, topic_id, p, d), when topics become known or forgotten."""
+        return self.share_base()._transitions
+
     @functools.cached_property
     def counts(self) -> dict[str, int]:
-        self.share_base()
         return _intake_counts(self.engine, self.ev, self.base, self.config, self.intake, self.heavy)
 
     @property
@@ -97,7 +106,6 @@ class LabelRun:
     @functools.cached_property
     def footprints(self):
         """Ibis table: footprints with known_since_us, as of ``as_of_us``."""
-        self.share_base()
         return footprint_rows(self.base, self.transitions, self.config, self.as_of_us)
 
     def materialize(self) -> "LabelRun":
@@ -131,7 +139,7 @@ class LabelRun:
 
     def history_frame(self) -> pd.DataFrame:
         """user_id, history_len: each user's interactions up to ``as_of_us`` (unplaced ones included)."""
-        return self.engine.to_pandas(user_history(self.share_base().base, self.as_of_us))
+        return self.engine.to_pandas(user_history(self.base, self.as_of_us))
 
     def footprints_frame(self) -> pd.DataFrame:
         return self.footprints_arrow().to_pandas()
