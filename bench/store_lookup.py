@@ -66,6 +66,12 @@ def drop_page_cache(root: Path) -> bool:
     return True
 
 
+def cold_store(root: Path):
+    """A fresh Store over a store whose files were just dropped from the OS page cache."""
+    dropped = drop_page_cache(root)
+    return open_store(root), dropped
+
+
 def pct(xs, q):
     return float(np.percentile(np.asarray(xs) * 1000, q))
 
@@ -94,8 +100,7 @@ def main() -> None:
         asked = [f"u{r:07d}" if rng.random() >= 0.1 else f"unknown{r}" for r in ranks]
         for label in ("cold", "warm"):
             if label == "cold":
-                dropped = drop_page_cache(Path(d) / "s")
-                store = open_store(Path(d) / "s")
+                store, dropped = cold_store(Path(d) / "s")
                 print(f"cold passes: OS page cache {'dropped' if dropped else 'NOT dropped'}, fresh Store")
             lat = []
             for u in asked:
@@ -106,8 +111,7 @@ def main() -> None:
         cands = [list(rng.choice(items, 500, replace=False)) for _ in range(min(200, args.queries))]
         for label in ("cold", "warm"):
             if label == "cold":
-                drop_page_cache(Path(d) / "s")
-                store = open_store(Path(d) / "s")
+                store, _ = cold_store(Path(d) / "s")
                 t0 = time.perf_counter()
                 store.preload()
                 print(f"item catalog load (once per reader and snapshot): {1000 * (time.perf_counter() - t0):.0f} ms")
