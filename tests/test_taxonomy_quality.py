@@ -3,9 +3,13 @@
 Outside check: WordNet 3.0 noun synsets (Princeton University; Debian package ``wordnet-base``),
 lemma + gloss as item text, the lexicographer file (26 noun categories) as the editorial truth.
 Scores are scikit-learn's AMI and NMI. Defaults were tuned on sample seed 0 only; the assertions
-run on seeds 1, 2 and 3. The level judged is fixed here, before any score: level 1 (fine topics),
-because the coarse level is a grouping of fine topics with a fixed rule (square root of their
-count), while the fine level is what HDBSCAN finds without being told a count.
+run on seeds 1 to 6 (1-3 from the start; 4-6 added later, first scored with the defaults as they
+are). KMeans's own AMI moves with its random start (seed 0: 0.400-0.426 over 8 starts, sd 0.008),
+so the embeddings+KMeans reference is the median of 5 random starts, each with n_init=10; the
+first start's AMI and the spread are printed too. The level judged is fixed here, before any
+score: level 1 (fine topics), because the coarse level is a grouping of fine topics with a fixed
+rule (square root of their count), while the fine level is what HDBSCAN finds without being told
+a count.
 """
 from __future__ import annotations
 
@@ -41,13 +45,16 @@ def wordnet_scores(seed: int) -> dict[str, float]:
     placed = tax.item_topics[tax.item_topics["level"] == LEVEL].set_index("item_id")["topic_id"]
     ours = sample["item_id"].map(placed).fillna("(unplaced)")  # unplaced items count as one group
     x, _ = embed_texts(sample["title"].tolist(), emb, EmbeddingCache(cache, emb.name), progress=False)
-    km = KMeans(k, n_init=10, random_state=seed).fit_predict(x)
+    runs = [KMeans(k, n_init=10, random_state=seed * 10 + r).fit_predict(x) for r in range(5)]
+    km_amis = [float(adjusted_mutual_info_score(truth, lab)) for lab in runs]
+    km = runs[int(np.argsort(km_amis)[2])]  # the median run of five
     tfidf = TfidfVectorizer(stop_words="english", sublinear_tf=True).fit_transform(sample["title"])
     svd = TruncatedSVD(100, random_state=seed).fit_transform(tfidf)
     svd /= np.linalg.norm(svd, axis=1, keepdims=True) + 1e-12
     tf_km = KMeans(k, n_init=10, random_state=seed).fit_predict(svd)
     scores = {"items": len(sample), "topics": int(placed.nunique()),
-              "unplaced_share": float((ours == "(unplaced)").mean())}
+              "unplaced_share": float((ours == "(unplaced)").mean()),
+              "kmeans_first_start_ami": km_amis[0], "kmeans_ami_spread": max(km_amis) - min(km_amis)}
     for name, lab in (("taxonomy", ours), ("embeddings_kmeans", km), ("tfidf_svd_kmeans", tf_km)):
         scores[f"{name}_ami"] = float(adjusted_mutual_info_score(truth, lab))
         scores[f"{name}_nmi"] = float(normalized_mutual_info_score(truth, lab))
@@ -57,7 +64,7 @@ def wordnet_scores(seed: int) -> dict[str, float]:
 
 
 @pytest.mark.external
-@pytest.mark.parametrize("seed", [1, 2, 3])
+@pytest.mark.parametrize("seed", [1, 2, 3, 4, 5, 6])
 def test_wordnet_taxonomy_beats_tfidf_baseline_with_few_unplaced(seed):
     """On WordNet nouns the taxonomy beats TF-IDF+SVD+KMeans (told the category count) by AMI, <= 10% unplaced."""
     s = wordnet_scores(seed)
@@ -66,11 +73,12 @@ def test_wordnet_taxonomy_beats_tfidf_baseline_with_few_unplaced(seed):
 
 
 @pytest.mark.external
-@pytest.mark.parametrize("seed", [1, 2, 3])
-@pytest.mark.xfail(strict=False, reason="known shortfall (issue 3 open): measured AMI gaps to embeddings+KMeans "
-                                        "were 0.027, 0.015 and 0.029 on seeds 1, 2, 3")
+@pytest.mark.parametrize("seed", [1, 2, 3, 4, 5, 6])
+@pytest.mark.xfail(strict=False, reason="known shortfall (issue 3 open): measured AMI gaps to the median "
+                                        "embeddings+KMeans were 0.024, 0.007, 0.012, 0.027, 0.010, 0.007 on seeds 1-6")
 def test_wordnet_taxonomy_within_002_of_embeddings_kmeans(seed):
-    """Without the category count, the taxonomy's AMI is within 0.02 of KMeans told the count, on the same embeddings."""
+    """Without the category count, the taxonomy's AMI is within 0.02 of KMeans told the count (median of 5 starts),
+    on the same embeddings."""
     s = wordnet_scores(seed)
     assert s["taxonomy_ami"] >= s["embeddings_kmeans_ami"] - 0.02
 
