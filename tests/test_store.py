@@ -136,6 +136,20 @@ def test_missing_or_damaged_store_is_a_clear_error(tmp_path):
         open_store(tmp_path / "store")
 
 
+def test_snapshot_of_an_older_format_is_refused_and_replaced_by_the_next_publish(tmp_path):
+    """A reader refuses a snapshot written in an older store format; the next publish writes every shard anew."""
+    name = _publish(tmp_path, shards=4)
+    manifest_path = tmp_path / "store" / "snapshots" / name / "manifest.json"
+    manifest = json.loads(manifest_path.read_text())
+    manifest_path.write_text(json.dumps({**manifest, "format": "labeler-store/1"}))
+    with pytest.raises(ArtifactError, match="unknown store format 'labeler-store/1'.*Publish a new snapshot"):
+        open_store(tmp_path / "store")
+    name = _publish(tmp_path, shards=4)
+    new = json.loads((tmp_path / "store" / "snapshots" / name / "manifest.json").read_text())
+    assert len(new["rewritten_shards"]) == 4
+    assert open_store(tmp_path / "store").footprint("ana").history_len == 3
+
+
 def test_concurrent_readers_agree(tmp_path):
     """Threads sharing one Store get the same answers."""
     _publish(tmp_path)

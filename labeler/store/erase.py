@@ -45,7 +45,7 @@ def forget_users(path, user_ids: Iterable[str], outputs: Iterable = ()) -> str:
     frames, users = [], []
     for fname in store.manifest["shards"]:
         con = store._con(fname)
-        f = pd.read_sql_query("SELECT * FROM topics", con)
+        f = pd.read_sql_query("SELECT * FROM topics", con).drop(columns="history_len")
         u = pd.read_sql_query("SELECT * FROM users", con)
         frames.append(f)
         users.append(u)

@@ -12,7 +12,8 @@ import pandas as pd
 
 from ..errors import ArtifactError
 
-FORMAT = "labeler-store/1"
+FORMAT = "labeler-store/2"  # 2: 16 KiB pages, history_len on every topic row (one lookup per user)
+PAGE_SIZE = 16384
 NEVER = np.iinfo("int64").min
 
 
@@ -53,15 +54,16 @@ def current_name(root: Path) -> str:
                             "or labeler.publish_store().") from None
 
 
-def read_manifest(root: Path, name: str) -> dict:
+def read_manifest(root: Path, name: str, *, any_format: bool = False) -> dict:
     p = root / "snapshots" / name / "manifest.json"
     try:
         m = json.loads(p.read_text())
     except (FileNotFoundError, json.JSONDecodeError) as exc:
         raise ArtifactError(f"{p}: snapshot manifest missing or unreadable ({exc}). The store is damaged; "
                             "publish a new snapshot.") from None
-    if m.get("format") != FORMAT:
-        raise ArtifactError(f"{p}: unknown store format {m.get('format')!r}; expected {FORMAT!r}.")
+    if m.get("format") != FORMAT and not any_format:
+        raise ArtifactError(f"{p}: unknown store format {m.get('format')!r}; expected {FORMAT!r}. "
+                            "Publish a new snapshot with this version of labeler.")
     return m
 
 

@@ -106,10 +106,15 @@ class Store:
         return con
 
     def _user(self, user_id: str):
+        """(history length, topic rows) of one user: one range read of the clustered topics table;
+        only a user without topic rows is looked up in ``users``."""
         con = self._con(f"users-{shard_of(user_id, self.manifest['n_shards']):02d}.sqlite")
-        row = con.execute("SELECT history_len FROM users WHERE user_id = ?", (user_id,)).fetchone()
         topics = con.execute("SELECT level, topic_id, interactions, engaged_interactions, known, first_us, last_us, "
-                             "known_since_us, recent FROM topics WHERE user_id = ?", (user_id,)).fetchall()
+                             "known_since_us, recent, history_len FROM topics WHERE user_id = ?",
+                             (user_id,)).fetchall()
+        if topics:
+            return topics[0][9], topics
+        row = con.execute("SELECT history_len FROM users WHERE user_id = ?", (user_id,)).fetchone()
         return (row[0] if row else 0), topics
 
     def _names(self, topic_ids: Iterable[str]) -> dict[str, str]:
