@@ -57,9 +57,15 @@ class TaxonomyConfig(_Strict):
     embedding_cache: str | None = Field(None, description="Folder of the content-hash embedding cache.")
     batch_size: int = Field(64, ge=1)
     pca_components: int = Field(16, ge=2)
-    min_cluster_size: int = Field(10, ge=2)
+    min_cluster_size: int = Field(5, ge=2)
     min_samples: int | None = Field(2, ge=1)
-    cluster_selection: Literal["eom", "leaf"] = "eom"
+    cluster_selection: Literal["eom", "leaf"] = "leaf"
+    fine_count: Literal["silhouette", "clusters"] = Field(
+        "silhouette", description="silhouette: merge HDBSCAN's clusters along a Ward tree to the count with the "
+        "best silhouette; clusters: keep HDBSCAN's clusters as fine topics")
+    fine_topics: int | None = Field(None, ge=1, description="Level-1 topic count (at most HDBSCAN's cluster "
+                                    "count); None chooses it by fine_count.")
+    silhouette_sample: int = Field(3000, ge=100, description="items the silhouette is computed on")
     merge_similarity: float | None = Field(None, gt=0.0, le=1.0,
                                            description="merge fine topics whose centres are this similar")
     refine_iterations: int = Field(100, ge=0, description="k-means steps moving HDBSCAN's centres; 0 = none")

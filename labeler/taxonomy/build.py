@@ -1,10 +1,12 @@
 """Learn a two-level taxonomy from item text.
 
 Steps: embed (cached by content hash) -> L2 normalise -> PCA -> L2 normalise -> HDBSCAN on a
-sample (at most ``fit_sample_cap`` items) -> fine topics (level 1) as the clusters' centroids in
-the embedding space -> every item placed at its nearest centroid, with confidence = cosine
-similarity, unplaced below ``min_confidence`` -> coarse topics (level 0) by agglomerating fine
-centroids -> names by class-based TF-IDF -> ids matched to a previous taxonomy by item overlap.
+sample (at most ``fit_sample_cap`` items; leaf selection: many small dense groups) -> their
+centroids in the embedding space, moved by k-means steps -> merged along a Ward tree to the count
+with the best silhouette: the fine topics (level 1) -> every item placed at its nearest centroid,
+with confidence = cosine similarity, unplaced below ``min_confidence`` -> coarse topics (level 0)
+by agglomerating fine centroids -> names by class-based TF-IDF -> ids matched to a previous
+taxonomy by item overlap.
 
 Placing every item at its nearest centroid (HDBSCAN finds the topics, the centroids place the
 items) makes ``Taxonomy.assign`` on the build items reproduce the build exactly.
@@ -93,6 +95,53 @@ def _refine(x: np.ndarray, centroids: np.ndarray, iterations: int) -> np.ndarray
     return centroids.astype(np.float32)
 
 
+def _sizes(x: np.ndarray, centroids: np.ndarray) -> np.ndarray:
+    """How many of the unit vectors ``x`` are nearest to each centre."""
+    return np.bincount(np.argmax(x @ centroids.T, axis=1), minlength=len(centroids)).astype(np.float64)
+
+
+def _merged(centroids: np.ndarray, sizes: np.ndarray, groups: np.ndarray) -> np.ndarray:
+    """Centres of groups of topics: the members' centres weighted by their sizes."""
+    merged = np.vstack([(centroids[groups == g] * np.maximum(sizes[groups == g], 1.0)[:, None]).sum(axis=0)
+                        for g in range(groups.max() + 1)])
+    return _unit(merged).astype(np.float32)
+
+
+def _merge_to_count(x: np.ndarray, centroids: np.ndarray, cfg: TaxonomyConfig) -> np.ndarray:
+    """Merge fine topics along a Ward tree of their centres, to ``fine_topics`` or else to the count
+    whose partition has the best silhouette (cosine, on at most ``silhouette_sample`` items).
+
+    HDBSCAN with leaf selection finds many small dense groups; merging them bottom-up joins groups
+    that belong together, and the silhouette (Rousseeuw 1987) chooses where to stop. Counts from 2
+    to the number of groups are tried (100 of them, spaced geometrically, when there are more).
+    """
+    from scipy.cluster.hierarchy import fcluster, linkage
+    from sklearn.metrics import silhouette_score
+    from sklearn.metrics.pairwise import cosine_distances
+    n = len(centroids)
+    if n <= 2:
+        return centroids
+    tree = linkage(centroids.astype(np.float64), method="ward")
+    sizes = _sizes(x, centroids)
+    if cfg.fine_topics is not None:
+        return _merged(centroids, sizes, fcluster(tree, t=min(cfg.fine_topics, n), criterion="maxclust") - 1)
+    rng = np.random.default_rng(cfg.seed)
+    sub = x if len(x) <= cfg.silhouette_sample else x[np.sort(rng.choice(len(x), cfg.silhouette_sample,
+                                                                          replace=False))]
+    dist = cosine_distances(sub)
+    counts = range(n, 1, -1) if n <= 101 else sorted({int(round(v)) for v in np.geomspace(n, 2, 100)}, reverse=True)
+    best, best_score = centroids, -np.inf
+    for k in counts:
+        merged = _merged(centroids, sizes, fcluster(tree, t=k, criterion="maxclust") - 1)
+        labels = np.argmax(sub @ merged.T, axis=1)
+        if len(np.unique(labels)) < 2:
+            continue
+        score = silhouette_score(dist, labels, metric="precomputed")
+        if score > best_score:
+            best, best_score = merged, score
+    return best
+
+
 def _merge_close(x: np.ndarray, centroids: np.ndarray, similarity: float) -> np.ndarray:
     """Merge topics whose centres have cosine similarity >= ``similarity`` (average linkage)."""
     from scipy.cluster.hierarchy import fcluster, linkage
@@ -100,10 +149,7 @@ def _merge_close(x: np.ndarray, centroids: np.ndarray, similarity: float) -> np.
         return centroids
     groups = fcluster(linkage(centroids.astype(np.float64), method="average", metric="cosine"),
                       t=1.0 - similarity, criterion="distance") - 1
-    sizes = np.bincount(np.argmax(x @ centroids.T, axis=1), minlength=len(centroids)).astype(np.float64)
-    merged = np.vstack([(centroids[groups == g] * np.maximum(sizes[groups == g], 1.0)[:, None]).sum(axis=0)
-                        for g in range(groups.max() + 1)])
-    return _unit(merged).astype(np.float32)
+    return _merged(centroids, _sizes(x, centroids), groups)
 
 
 def _coarse(centroids: np.ndarray, cfg: TaxonomyConfig) -> np.ndarray:
@@ -129,6 +175,8 @@ def _fit_centroids(x: np.ndarray, cfg: TaxonomyConfig) -> tuple[np.ndarray, int]
     clusters = sorted(set(labels.tolist()) - {-1})
     centroids = _refine(x, _unit(np.vstack([x[labels == c].mean(axis=0) for c in clusters])),
                         cfg.refine_iterations)
+    if cfg.fine_topics is not None or cfg.fine_count == "silhouette":
+        centroids = _refine(x, _merge_to_count(x, centroids, cfg), cfg.refine_iterations)
     if cfg.merge_similarity is not None:
         centroids = _refine(x, _merge_close(x, centroids, cfg.merge_similarity), cfg.refine_iterations)
     return centroids, int((labels == -1).sum())
