@@ -81,14 +81,16 @@ def _refine(x: np.ndarray, centroids: np.ndarray, iterations: int) -> np.ndarray
     HDBSCAN decides how many topics there are and where their dense cores lie; these steps move
     each centre to the mean of the items nearest to it, so diffuse regions are shared out too.
     """
+    from scipy import sparse
+    rows = np.arange(len(x))
     for _ in range(iterations if len(centroids) > 1 else 0):
         nearest = np.argmax(x @ centroids.T, axis=1)
-        moved = centroids.copy()
-        for c in range(len(centroids)):
-            members = x[nearest == c]
-            if len(members):
-                moved[c] = members.mean(axis=0)
-        moved = _unit(moved)
+        members = sparse.csr_matrix((np.ones(len(x), dtype=x.dtype), (nearest, rows)),
+                                    shape=(len(centroids), len(x)))
+        sums = np.asarray(members @ x)  # per centre, the sum of its members (its mean's direction)
+        empty = np.bincount(nearest, minlength=len(centroids)) == 0
+        sums[empty] = centroids[empty]  # a centre nobody is nearest to stays where it is
+        moved = _unit(sums)
         if np.allclose(moved, centroids, atol=1e-7):
             break
         centroids = moved
