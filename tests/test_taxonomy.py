@@ -56,6 +56,22 @@ def test_two_levels_with_parents(built):
     assert (it[1].map(parent) == it[0]).all()
 
 
+def test_fine_topic_count_settings():
+    """fine_topics cuts the merge tree at that count; fine_count="clusters" keeps HDBSCAN's groups as
+    they are, which on this catalog are more numerous than the silhouette's choice."""
+    from labeler.embed import HashingEmbedder
+    items = catalog()
+    emb = HashingEmbedder(128)
+
+    def fine_count(**kw):
+        tax = build_taxonomy(items, CFG.model_copy(update=kw), embedder=emb, progress=False)
+        return int((tax.topics["level"] == 1).sum())
+    chosen, kept = fine_count(min_cluster_size=5), fine_count(min_cluster_size=5, fine_count="clusters")
+    assert chosen == 4 and kept > chosen
+    assert fine_count(min_cluster_size=5, fine_topics=2) == 2
+    assert fine_count(min_cluster_size=5, fine_topics=10_000) == kept  # never more than HDBSCAN found
+
+
 def test_topics_have_keywords_and_names(built):
     """Each topic has class-based TF-IDF keywords and a short name made of them."""
     _, tax = built
