@@ -94,7 +94,14 @@ class SentenceEmbedder:
             os.environ["HF_HUB_OFFLINE"] = "1"
             os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
             from sentence_transformers import SentenceTransformer
-            self._model = SentenceTransformer(str(self._path), device="cpu")
+            from transformers.utils import logging as hf_logging
+            was_on = hf_logging.is_progress_bar_enabled()
+            hf_logging.disable_progress_bar()  # the weight-loading bar of a sub-second local load says nothing
+            try:
+                self._model = SentenceTransformer(str(self._path), device="cpu")
+            finally:
+                if was_on:
+                    hf_logging.enable_progress_bar()
         return self._model
 
     def encode(self, texts: Sequence[str]) -> np.ndarray:
