@@ -69,6 +69,7 @@ def test_fine_topic_count_settings():
     chosen, kept = fine_count(min_cluster_size=5), fine_count(min_cluster_size=5, fine_count="clusters")
     assert chosen == 4 and kept > chosen
     assert fine_count(min_cluster_size=5, fine_topics=2) == 2
+    assert fine_count(min_cluster_size=5, fine_topics=1) == 1
     assert fine_count(min_cluster_size=5, fine_topics=10_000) == kept  # never more than HDBSCAN found
 
 

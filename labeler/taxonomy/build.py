@@ -121,7 +121,7 @@ def _merge_to_count(x: np.ndarray, centroids: np.ndarray, cfg: TaxonomyConfig) -
     from sklearn.metrics import silhouette_score
     from sklearn.metrics.pairwise import cosine_distances
     n = len(centroids)
-    if n <= 2:
+    if n < 2:
         return centroids
     tree = linkage(centroids.astype(np.float64), method="ward")
     sizes = _sizes(x, centroids)
