@@ -26,8 +26,8 @@ from . import __version__
 from .config import InputConfig, LabelConfig
 from .engines import Engine, make_engine
 from .intake import interactions_table, item_topics_table
-from .labels import each_interaction_once, footprint_rows, heavy_users, known_topic_counts, known_transitions, \
-    label_rows, prepare, topic_rows, user_history, with_support
+from .labels import carried_rows, continue_history, continued_history, each_interaction_once, footprint_rows, \
+    heavy_users, known_topic_counts, known_transitions, label_rows, prepare, topic_rows, user_history, with_support
 from .tables import FOOTPRINTS_COLUMNS, LABEL_VALUES, LABELS_COLUMNS, Intake
 
 log = logging.getLogger(__name__)
@@ -46,6 +46,36 @@ FOOTPRINTS_SCHEMA = pa.schema([
     ("recent_us", pa.list_(pa.int64()))])
 SORT_KEYS = ("user_id", "ts_us", "event_id", "item_id", "level")
 ROW_GROUP = 262_144
+
+
+@dataclasses.dataclass
+class Carried:
+    """State carried at a watermark, to label only events after it (the job's daily path).
+
+    ``footprints`` and ``users`` are the footprints and per-user history tables of a run whose
+    watermark was ``watermark_us`` (as Parquet paths, Arrow tables or engine tables), with the same
+    taxonomy and label settings; ``user_ids`` limits them to the users being continued. Every event
+    labelled from this state must be later than ``watermark_us``: events at or before it need the
+    user's whole history.
+    """
+
+    footprints: Any
+    users: Any
+    watermark_us: int
+    user_ids: Any = None
+
+    def tables(self, engine: Engine):
+        """(footprints with known_since_us, users) as engine tables, cut to ``user_ids``."""
+        def load(x, prefix):
+            if isinstance(x, (str, os.PathLike)):
+                return engine.read_parquet(x)
+            return engine.table(x, prefix) if isinstance(x, (pa.Table, pd.DataFrame)) else x
+        fp, users = load(self.footprints, "carried_fp"), load(self.users, "carried_users")
+        if self.user_ids is not None:
+            ids = engine.table(pa.table({"user_id": pa.array(self.user_ids, pa.string())}), "continued")
+            fp, users = fp.semi_join(ids, "user_id"), users.semi_join(ids, "user_id")
+        fp = fp.mutate(known_since_us=engine.epoch_us(fp.known_since.cast(ibis.dtype("timestamp('UTC', 6)"))))
+        return fp, users.select("user_id", users.history_len.cast("int64"))
 
 
 @dataclasses.dataclass
@@ -72,13 +102,16 @@ class LabelRun:
     heavy: Any = None      # Ibis table: users set aside by max_user_events (None: no limit)
     single_topic: bool = False
     base_shared: bool = False
+    carried: Any = None    # (footprints, users) engine tables and the watermark, when continuing
+    carried_until_us: int | None = None
 
     def share_base(self) -> "LabelRun":
         """Compute the topic rows once into an engine table, for results that read them again."""
         if not self.base_shared:
             self._base = self._base.cache()
             self._transitions = known_transitions(self._base, self.config)
-            self.labels = _label_expr(self._base, self._transitions, self.config, self.single_topic)
+            self.labels = _label_expr(self._base, self._transitions, self.config, self.single_topic,
+                                      self.carried_until_us)
             self.base_shared = True
         return self
 
@@ -106,7 +139,17 @@ class LabelRun:
     @functools.cached_property
     def footprints(self):
         """Ibis table: footprints with known_since_us, as of ``as_of_us``."""
-        return footprint_rows(self.base, self.transitions, self.config, self.as_of_us)
+        if self.carried is None:
+            return footprint_rows(self.base, self.transitions, self.config, self.as_of_us)
+        return footprint_rows(self.base, self.transitions, self.config, self.as_of_us, history=self.history,
+                              carried=self.carried[0], carried_until_us=self.carried_until_us)
+
+    @property
+    def history(self):
+        """Ibis table: (user_id, history_len), each user's interactions up to ``as_of_us``."""
+        if self.carried is None:
+            return user_history(self.base, self.as_of_us)
+        return continued_history(self.base, self.carried[1], self.as_of_us)
 
     def materialize(self) -> "LabelRun":
         """Compute the labels once into an engine table (which spills to disk) for several reads.
@@ -139,7 +182,7 @@ class LabelRun:
 
     def history_frame(self) -> pd.DataFrame:
         """user_id, history_len: each user's interactions up to ``as_of_us`` (unplaced ones included)."""
-        return self.engine.to_pandas(user_history(self.base, self.as_of_us))
+        return self.engine.to_pandas(self.history)
 
     def footprints_frame(self) -> pd.DataFrame:
         return self.footprints_arrow().to_pandas()
@@ -291,27 +334,49 @@ def _write_partitioned(run: LabelRun, root: Path) -> int:
 
 def plan_labels(interactions, taxonomy, config: LabelConfig | None = None, *,
                 input_config: InputConfig | None = None, engine: Engine | None = None,
-                as_of=None, source: str | None = None) -> LabelRun:
-    """Validate the inputs and plan labels and footprints on ``engine`` (DuckDB by default)."""
+                as_of=None, source: str | None = None, carried: Carried | None = None) -> LabelRun:
+    """Validate the inputs and plan labels and footprints on ``engine`` (DuckDB by default).
+
+    With ``carried``, the interactions are the events after the carried watermark of the users
+    being continued, and the plan labels only them, from that state (see :class:`Carried`).
+    """
     cfg = config or LabelConfig()
     eng = engine or make_engine()
     ev, intake = interactions_table(eng, interactions, input_config, source)
     it, levels, has_valid, single_topic = item_topics_table(eng, taxonomy, cfg)
     prepared, heavy = prepare(ev, cfg), None
     if cfg.max_user_events is not None:  # one user's history is one ordered sequence: bots stall a task
+        if carried is not None:
+            from .errors import ConfigError
+            raise ConfigError("labels.max_user_events cannot be continued from carried state: a user "
+                              "crossing the limit loses every earlier label. Label the whole history.")
         heavy = heavy_users(prepared, cfg).cache()
         prepared = prepared.anti_join(heavy, "user_id")
+    state, until = None, None
+    if carried is not None:
+        state, until = carried.tables(eng), carried.watermark_us
+        first = eng.to_pandas(ev.aggregate(m=ev.ts_us.min()))["m"].iloc[0]
+        if first is not None and not pd.isna(first) and int(first) <= until:
+            from .errors import InputError
+            raise InputError(f"an event at {_iso_us(int(first))} is not after the carried watermark "
+                             f"{_iso_us(until)}.", source=intake.source, column="ts",
+                             hint="Continue from carried state only with later events; label the users "
+                                  "of earlier ones over their whole history.")
+        prepared = continue_history(prepared, state[1])
     base = topic_rows(prepared, it, levels, has_valid)
+    if state is not None:
+        base = base.union(carried_rows(state[0], base, cfg), distinct=False)
     transitions = known_transitions(base, cfg)
-    labels = _label_expr(base, transitions, cfg, single_topic)
+    labels = _label_expr(base, transitions, cfg, single_topic, until)
     version = hashlib.sha256("\x00".join([taxonomy.version, cfg.canonical_json(), intake.content_hash,
                                           __version__]).encode()).hexdigest()
     return LabelRun(eng, cfg, taxonomy.version, version, labels, base, transitions, ev, intake, as_of, heavy=heavy,
-                    single_topic=single_topic)
+                    single_topic=single_topic, carried=state, carried_until_us=until)
 
 
-def _label_expr(base, transitions, cfg: LabelConfig, single_topic: bool):
-    return label_rows(with_support(base, cfg), known_topic_counts(base, transitions), cfg, single_topic)
+def _label_expr(base, transitions, cfg: LabelConfig, single_topic: bool, after_us: int | None = None):
+    labels = label_rows(with_support(base, cfg), known_topic_counts(base, transitions), cfg, single_topic)
+    return labels if after_us is None else labels.filter(labels.ts_us > after_us)  # stand-ins are never labelled
 
 
 def _intake_counts(eng, ev, rows, cfg, intake: Intake, heavy=None) -> dict[str, int]:

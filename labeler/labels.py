@@ -16,6 +16,17 @@ Steps, for each interaction e = (u, i, t) and level L:
 4. ``known_transitions``: the moments each (u, L, T) becomes known or stops being known; their
    running sum gives ``known_topics`` = |F_u(t)| at any t.
 5. ``label_rows``: the label, the topic named, discovery, boost, multiplier and shaped reward.
+
+Continuing from carried state (the job's daily path): the rules read a user's history only through
+(a) ``history_len`` and (b) the qualifying times of each (user, level, topic) inside the window
+before t. For every t after a watermark W, (a) is the count up to W plus the new events before t,
+and (b) needs only the last ``min_support`` qualifying times up to W: a window [t - M, t) that holds
+any older time also holds all of the last ``min_support``, so counting only those gives
+min(count, min_support), which reaches ``min_support`` exactly when the full count does. So
+``carried_rows`` turns each carried footprint row into ``min_support`` stand-in topic rows (no item,
+qualifying, at their real times), the new events get ``history_len`` offset by the carried count
+(``continue_history``), and the same expressions label the new events exactly as a full
+recomputation would. ``footprint_rows`` merges the carried counts with the new ones.
 """
 from __future__ import annotations
 
@@ -43,6 +54,31 @@ def prepare(ev: ir.Table, cfg: LabelConfig) -> ir.Table:
     ev = ev.group_by(list(INTERACTION_KEY)).aggregate(
         ts=ev.ts.min(), engagement=ev.engagement.max(), event_type=ev.event_type.min(), arm=ev.arm.min())
     return ev.mutate(history_len=ibis.rank().over(group_by=ev.user_id, order_by=ev.ts_us))
+
+
+def continue_history(prepared: ir.Table, carried_users: ir.Table) -> ir.Table:
+    """``history_len`` of new events counted on from each user's carried count (user_id, history_len)."""
+    c = carried_users.select(_uid="user_id", _h0="history_len")
+    j = prepared.left_join(c, prepared.user_id == c._uid)
+    return j.select(*[j[k] for k in prepared.columns if k != "history_len"],
+                    history_len=(j.history_len + j._h0.fill_null(0)).cast("int64"))
+
+
+def carried_rows(carried: ir.Table, like: ir.Table, cfg: LabelConfig) -> ir.Table:
+    """Stand-in topic rows for history up to a watermark, shaped like the topic rows ``like``.
+
+    ``carried`` has user_id, level, topic_id and recent_us (the last ``min_support`` qualifying
+    times, in microseconds). Each time becomes one qualifying row with no item and no event, so it
+    counts towards support and known topics but is never labelled and never counted as an
+    interaction of its own (see the module docstring for why this is exact).
+    """
+    one = carried.select("user_id", "level", "topic_id", "recent_us").unnest("recent_us")
+    schema = like.schema()
+    values = {"user_id": one.user_id, "level": one.level, "topic_id": one.topic_id, "ts_us": one.recent_us,
+              "engagement": ibis.literal(float(cfg.engaged_min), type="float64"), "pos": _i64(0),
+              "nb": ibis.literal(False), "history_len": _i64(0)}
+    return one.select(*[(values[k] if k in values else ibis.null(schema[k])).cast(schema[k]).name(k)
+                        for k in like.columns])
 
 
 def heavy_users(ev: ir.Table, cfg: LabelConfig) -> ir.Table:
@@ -177,7 +213,8 @@ def label_rows(rows: ir.Table, counts: ir.Table, cfg: LabelConfig, single_topic:
 def each_interaction_once(rows: ir.Table) -> ir.Table:
     """Topic rows cut to one per interaction: the first level's primary (or unplaced) row."""
     first_level = rows.level.min().as_scalar()
-    return rows.filter((rows.level == first_level) & (rows.pos.isnull() | (rows.pos == 0)))
+    return rows.filter((rows.level == first_level) & (rows.pos.isnull() | (rows.pos == 0))
+                       & rows.item_id.notnull())  # carried stand-in rows have no item
 
 
 def user_history(rows: ir.Table, as_of_us: int) -> ir.Table:
@@ -187,32 +224,71 @@ def user_history(rows: ir.Table, as_of_us: int) -> ir.Table:
     return once.group_by("user_id").aggregate(history_len=once.count())
 
 
-def footprint_rows(rows: ir.Table, transitions: ir.Table, cfg: LabelConfig, as_of_us: int) -> ir.Table:
+def continued_history(rows: ir.Table, carried_users: ir.Table, as_of_us: int) -> ir.Table:
+    """(user_id, history_len): the carried count plus the user's new interactions up to ``as_of_us``."""
+    new = user_history(rows, as_of_us).select(_uid="user_id", _new="history_len")
+    j = carried_users.outer_join(new, carried_users.user_id == new._uid)
+    return j.select(user_id=j.user_id.fill_null(j._uid),
+                    history_len=(j.history_len.fill_null(0) + j._new.fill_null(0)).cast("int64"))
+
+
+def footprint_rows(rows: ir.Table, transitions: ir.Table, cfg: LabelConfig, as_of_us: int,
+                   history: ir.Table | None = None, carried: ir.Table | None = None,
+                   carried_until_us: int | None = None) -> ir.Table:
     """The footprints table as seen by an interaction just after ``as_of_us``.
 
     One row per (user, level, topic) touched by a qualifying interaction at or before ``as_of_us``.
     Beyond the contract's columns it carries what a lookup needs to apply the rules later:
     ``history_len`` (the user's interactions up to ``as_of_us``, unplaced ones included) and
     ``recent_us`` (the last ``min_support`` qualifying times, in microseconds).
+
+    With ``carried`` (footprint rows as of ``carried_until_us``, with ``known_since_us``) the rows
+    hold carried stand-ins (see :func:`carried_rows`) plus the new events: counts and first times
+    add to the carried ones, and a topic known now without a new start of its known period after
+    the watermark has been known since the carried ``known_since``. ``history`` (user_id,
+    history_len) replaces the count of the rows' own interactions.
     """
     end = as_of_us + 1
+    keys = ["user_id", "level", "topic_id"]
     qual = rows.filter(qualifies(rows, cfg) & (rows.ts_us <= as_of_us))
     in_window = qual.ts_us >= (end - cfg.memory_us) if cfg.memory_us is not None else qual.ts_us.notnull()
-    agg = qual.group_by(["user_id", "level", "topic_id"]).aggregate(
-        first_ts=qual.ts.min(), last_ts=qual.ts.max(), interactions=qual.count(),
-        engaged_interactions=(qual.engagement >= cfg.engaged_min).cast("int64").sum(),
-        _support=in_window.cast("int64").sum())
+    support = in_window.cast("int64").sum()
+    if carried is None:
+        agg = qual.group_by(keys).aggregate(
+            first_ts=qual.ts.min(), last_ts=qual.ts.max(), interactions=qual.count(),
+            engaged_interactions=(qual.engagement >= cfg.engaged_min).cast("int64").sum(), _support=support)
+    else:  # counts from the rows' own interactions (stand-ins have no item), support from all
+        own = qual.item_id.notnull()
+        agg = qual.group_by(keys).aggregate(
+            first_ts=qual.ts.min(where=own), last_ts=qual.ts.max(where=own),
+            interactions=own.cast("int64").sum(),
+            engaged_interactions=(own & (qual.engagement >= cfg.engaged_min)).cast("int64").sum(),
+            _support=support)
     tr = transitions.filter((transitions.p <= end) & (transitions.d > 0))
-    since = tr.group_by(["user_id", "level", "topic_id"]).aggregate(_since_us=tr.p.max() - 1)
-    keys = [qual.user_id, qual.level, qual.topic_id]
-    latest = qual.mutate(_n=ibis.row_number().over(group_by=keys, order_by=ibis.desc(qual.ts_us)))
+    if carried is not None:  # only starts after the watermark are the stand-ins' and the real history's alike
+        tr = tr.filter(tr.p > carried_until_us + 1)
+    since = tr.group_by(keys).aggregate(_since_us=tr.p.max() - 1)
+    latest = qual.mutate(_n=ibis.row_number().over(group_by=[qual.user_id, qual.level, qual.topic_id],
+                                                   order_by=ibis.desc(qual.ts_us)))
     latest = latest.filter(latest._n < cfg.min_support)
-    recent = latest.group_by(["user_id", "level", "topic_id"]).aggregate(recent_us=latest.ts_us.collect().sort())
-    history = user_history(rows, as_of_us)
-    j = agg.left_join(since, ["user_id", "level", "topic_id"])
+    recent = latest.group_by(keys).aggregate(recent_us=latest.ts_us.collect().sort())
+    history = user_history(rows, as_of_us) if history is None else history
+    j = agg.left_join(since, keys)
     out = j.select(*agg.columns, _since_us=j._since_us)
-    j = out.left_join(recent, ["user_id", "level", "topic_id"])
+    j = out.left_join(recent, keys)
     out = j.select(*out.columns, recent_us=j.recent_us)
+    if carried is not None:
+        c = carried.select(_cu="user_id", _cl="level", _ct="topic_id", _cfirst="first_ts", _clast="last_ts",
+                           _cn="interactions", _ce="engaged_interactions", _csince="known_since_us")
+        j = out.left_join(c, [out.user_id == c._cu, out.level == c._cl, out.topic_id == c._ct])
+        ts_type = "timestamp('UTC', 6)"
+        out = j.select(
+            "user_id", "level", "topic_id",
+            first_ts=j._cfirst.cast(ts_type).fill_null(j.first_ts.cast(ts_type)),
+            last_ts=j.last_ts.cast(ts_type).fill_null(j._clast.cast(ts_type)),
+            interactions=j.interactions.fill_null(0) + j._cn.fill_null(0),
+            engaged_interactions=j.engaged_interactions.fill_null(0) + j._ce.fill_null(0),
+            _support=j._support, _since_us=j._since_us.fill_null(j._csince), recent_us=j.recent_us)
     j = out.left_join(history, "user_id")
     out = j.select(*out.columns, history_len=j.history_len)
     known = out._support >= cfg.min_support

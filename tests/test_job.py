@@ -27,6 +27,7 @@ def scenario():
     s = generate_scenario(7, n_items=600, n_users=150, weeks=6)
     ev = s.interactions.copy()
     ev["date"] = pd.to_datetime(ev["ts"], utc=True).dt.strftime("%Y-%m-%d")
+    ev.loc[ev.index % 9 == 4, "event_type"] = "impression"  # for the event_types setting
     return s.items, ev
 
 
@@ -71,6 +72,10 @@ CONFIGS = {
     "any_new_warmup3": {"multi_topic": "any_new", "warmup": 3},
     "label_from_boost_discovery": {"label_from": "2026-03-20T00:00:00Z", "boost_on": "discovery"},
     "memory3": {"memory_days": 3},
+    "support3_memory10_any_new": {"min_support": 3, "memory_days": 10, "multi_topic": "any_new"},
+    "warmup4_engaged_boost": {"warmup": 4, "footprint_from": "engaged", "boost_on": "discovery"},
+    "label_from_inside_the_new_days": {"label_from": "2026-03-25T12:00:00Z"},
+    "event_types_play": {"event_types": ["play"], "min_support": 2},
 }
 
 
@@ -85,11 +90,71 @@ def test_incremental_runs_equal_one_full_run(tmp_path, scenario, name):
     write_days(ev, root / "interactions", dates[20:30])
     second = run_job(cfg).manifest
     assert second["mode"] == "incremental" and second["status"] == "committed"
-    assert second["dates_linked"] > 0 and second["relabelled_users"] != "all"
+    assert second["relabelled_users"] == 0 and second["continued_users"] > 0
+    assert second["dates_linked"] > 0 or name == "label_from_inside_the_new_days"  # no rows before it
     write_days(ev, root / "interactions", dates[30:])
     run_job(cfg)
     full = run_job(make_config(root, work="full", labels=CONFIGS[name])).manifest
     assert full["mode"] == "full"
+    assert_same_outputs(root / "work", root / "full")
+
+
+@pytest.mark.parametrize("name", ["defaults", "support3_memory10_any_new", "label_from_inside_the_new_days"])
+def test_ten_daily_runs_equal_one_full_run(tmp_path, scenario, name):
+    """Ten daily runs, each continued from the state carried at the last watermark (no user
+    re-labelled over their history), write the same bytes as one full run."""
+    root, dates = setup_root(tmp_path, scenario, 20)
+    _, ev = scenario
+    cfg = make_config(root, labels=CONFIGS[name])
+    run_job(cfg)
+    for day in dates[20:30]:
+        write_days(ev, root / "interactions", [day])
+        m = run_job(cfg).manifest
+        assert m["mode"] == "incremental" and m["relabelled_users"] == 0 and m["continued_users"] > 0, m
+    run_job(make_config(root, work="full", labels=CONFIGS[name]))
+    assert_same_outputs(root / "work", root / "full")
+
+
+def test_a_day_tying_the_watermark_takes_the_exact_path_for_its_users(tmp_path, scenario):
+    """Events at the watermark's own timestamp cannot be continued from state (events at one
+    instant never see each other, and the carried counts include the watermark's events): their
+    users are re-labelled over their whole history, the others continued; equal to a full run."""
+    root, dates = setup_root(tmp_path, scenario, 20)
+    _, ev = scenario
+    cfg = make_config(root, labels={"min_support": 2})
+    run_job(cfg)
+    watermark = pd.Timestamp(load_state(root / "work")["watermark"])
+    write_days(ev, root / "interactions", [dates[20]])
+    f = root / "interactions" / f"date={dates[20]}" / "part-0.parquet"
+    part = pd.read_parquet(f)
+    last = ev[pd.to_datetime(ev["ts"], utc=True) == watermark].iloc[0]
+    tie = part.iloc[[0]].assign(user_id=last["user_id"], item_id=part["item_id"].iloc[1], ts=watermark,
+                                event_id="tie")
+    pd.concat([part, tie], ignore_index=True).to_parquet(f, index=False)
+    m = run_job(cfg).manifest
+    assert m["relabelled_users"] == 1 and m["continued_users"] > 0
+    run_job(make_config(root, work="full", labels={"min_support": 2}))
+    assert_same_outputs(root / "work", root / "full")
+
+
+def test_a_day_of_only_new_users_is_continued_from_empty_state(tmp_path, scenario):
+    """Users never seen before start from no carried state: cold_start first, then the rules."""
+    root, dates = setup_root(tmp_path, scenario, 20)
+    _, ev = scenario
+    cfg = make_config(root)
+    run_job(cfg)
+    day = ev[ev["date"] == dates[20]].assign(user_id=lambda d: "new-" + d["user_id"])
+    write_days(day, root / "interactions", [dates[20]])
+    m = run_job(cfg).manifest
+    assert m["relabelled_users"] == 0 and m["continued_users"] == day["user_id"].nunique()
+    import pyarrow.parquet as pq
+    labels = pq.read_table(current_outputs(root / "work") / "labels" / f"date={dates[20]}").to_pandas()
+    first = labels[labels["user_id"].str.startswith("new-")].groupby("user_id").head(1)
+    assert (first["history_len"] == 0).all() and first["label"].isin(["cold_start", "unplaced"]).all()
+    whole = ev[ev["date"] < dates[20]]
+    write_days(whole, root / "fresh-in", dates[:20])
+    write_days(day, root / "fresh-in", [dates[20]])
+    run_job(make_config(root, work="full").model_copy(update={"interactions": str(root / "fresh-in")}))
     assert_same_outputs(root / "work", root / "full")
 
 

@@ -67,11 +67,15 @@ class GenerationWriter:
     """Builds generation ``gen`` from ``prev`` (or from nothing) and the re-labelled users' rows."""
 
     def __init__(self, gen: Path, prev: Path | None, users: pa.Array | None, start_date: str | None,
-                 versions, taxonomy_version: str):
+                 versions, taxonomy_version: str, people: pa.Array | None = None):
+        """``users``: whose label rows from ``start_date`` on are replaced (None: everyone's);
+        ``people``: whose footprint and history rows are replaced (default: ``users``). Users
+        continued from carried state are among ``people`` only: their earlier rows stay."""
         if gen.exists():  # left by a run that crashed before committing: never committed, so rebuilt
             shutil.rmtree(gen)
         gen.mkdir(parents=True)
         self.gen, self.prev, self.users, self.start = gen, prev, users, start_date
+        self.people = users if people is None else people
         self.versions, self.taxonomy_version = versions, taxonomy_version
         self.counts: dict[tuple[int, str], int] = {}
         self.rows_written = 0
@@ -149,9 +153,9 @@ class GenerationWriter:
         """footprints.parquet and users.parquet: previous rows of others (aged to the new
         watermark by ``aged``), plus the re-labelled users' new rows."""
         fp_parts, us_parts = [footprints.cast(FOOTPRINTS_SCHEMA)], [users.cast(USERS_SCHEMA)]
-        if self.prev is not None and self.users is not None:
-            fp_parts.append(aged(_without(pq.read_table(self.prev / "footprints.parquet"), self.users)))
-            us_parts.append(_without(pq.read_table(self.prev / "users.parquet"), self.users))
+        if self.prev is not None and self.people is not None:
+            fp_parts.append(aged(_without(pq.read_table(self.prev / "footprints.parquet"), self.people)))
+            us_parts.append(_without(pq.read_table(self.prev / "users.parquet"), self.people))
         fp = _sorted(pa.concat_tables([p.cast(FOOTPRINTS_SCHEMA) for p in fp_parts]), FOOTPRINT_SORT)
         us = _sorted(pa.concat_tables(us_parts), [("user_id", "ascending", "at_end")])
         write_table(fp, self.gen / "footprints.parquet", "write_footprints")

@@ -37,7 +37,7 @@ from ..config import JobConfig
 from ..engines import make_engine
 from ..errors import ConfigError, EngineError, InputError, RejectedError
 from ..intake import Staged as StagedInput
-from ..labelling import plan_labels
+from ..labelling import Carried, plan_labels
 from ..tables import normalize_items, read_table
 from ..taxonomy import Taxonomy, build_taxonomy
 from . import failpoints
@@ -154,8 +154,9 @@ class _Run:
             raise InputError("no interactions accepted in any partition; nothing to label.",
                              source=cfg.interactions, hint="Check the partitions and the rejected list.")
         prev_gen = (work / "outputs" / state["generation"]) if (state and mode == "incremental") else None
+        continued: list[str] = []
         if mode == "incremental":
-            users, start_us = self._affected(parts, staged_new, affected_old, changes, state)
+            users, continued, start_us = self._affected(parts, staged_new, affected_old, changes, state)
         else:
             users, start_us = None, min(p.min_ts_us for p in parts.values() if p.min_ts_us is not None)
         start_date = _day(start_us) if start_us is not None else None
@@ -163,31 +164,37 @@ class _Run:
 
         t0 = time.perf_counter()
         eng = make_engine(cfg.engine)
-        files = [str(work / p.events) for _, p in sorted(parts.items()) if p.rows]
-        ev = eng.read_parquet(files)
-        user_array = pa.array(users, pa.string()) if users is not None else None
-        if user_array is not None:
-            ut = eng.table(pa.table({"user_id": user_array}), "relabel")
-            ev = ev.filter(ev.user_id.isin(ut.user_id))
         view = taxonomy_view(tax, register)
-        staged = StagedInput(ev, source=cfg.interactions, rows=sum(p.rows for p in parts.values()),
-                             content_hash="job")
-        run = plan_labels(staged, view, cfg.labels, engine=eng,
-                          as_of=pd.Timestamp(watermark_us, unit="us", tz="UTC")).materialize()
+        as_of = pd.Timestamp(watermark_us, unit="us", tz="UTC")
+        user_array = pa.array(users, pa.string()) if users is not None else None
+        runs = []
+        if user_array is None or len(user_array) or not continued:  # whole histories: all, or the exact-path users
+            files = [str(work / p.events) for _, p in sorted(parts.items()) if p.rows]
+            runs.append(plan_labels(self._staged(eng, files, user_array), view, cfg.labels, engine=eng,
+                                    as_of=as_of).materialize())
+        if continued:  # the day's events only, continued from the state carried at the last watermark
+            files = [str(work / parts[n].events) for n in staged_new if parts[n].rows]
+            ids = pa.array(continued, pa.string())
+            carried = Carried(prev_gen / "footprints.parquet", prev_gen / "users.parquet", state["watermark_us"], ids)
+            runs.append(plan_labels(self._staged(eng, files, ids), view, cfg.labels, engine=eng, as_of=as_of,
+                                    carried=carried).materialize())
         self._timed("labels", t0)
         failpoints.hit("after_labels")
 
         t0 = time.perf_counter()
         gen_name = f"gen-{seq:06d}"
+        people = None if user_array is None else pa.concat_arrays([user_array, pa.array(continued, pa.string())])
         writer = GenerationWriter(work / "outputs" / gen_name, prev_gen, user_array, start_date, versions,
-                                  tax.version)
+                                  tax.version, people=people)
         linked = writer.link_unchanged()
-        t = run.labels
+        t = runs[0].labels if len(runs) == 1 else runs[0].labels.union(runs[1].labels, distinct=False)
         t = t.filter(t.ts_us >= (start_us // DAY_US) * DAY_US) if start_us is not None else t
         writer.write_stream(eng.to_batches(t.mutate(_date=t.ts.date().cast("string")).order_by("_date")))
         writer.finish_dates()
         lab = cfg.labels
-        writer.write_people(run.footprints_arrow(), pa.Table.from_pandas(run.history_frame(), preserve_index=False),
+        writer.write_people(pa.concat_tables([r.footprints_arrow() for r in runs]),
+                            pa.concat_tables([pa.Table.from_pandas(r.history_frame(), preserve_index=False)
+                                              for r in runs]),
                             lambda tb: age_footprints(tb, watermark_us, lab.min_support, lab.memory_us))
         self._timed("outputs", t0)
         failpoints.hit("after_outputs")
@@ -207,7 +214,7 @@ class _Run:
         manifest.update(
             status="committed", generation=gen_name, watermark=pd.Timestamp(
                 watermark_us, unit="us", tz="UTC").isoformat(),
-            relabelled_users="all" if users is None else len(users),
+            relabelled_users="all" if users is None else len(users), continued_users=len(continued),
             relabelled_from=start_date, rows_in=int(sum(parts[n].rows for n in staged_new if n in parts)),
             quarantined=int(sum(parts[n].quarantined for n in staged_new if n in parts)),
             rows_out=counts, label_rows_written=writer.rows_written,
@@ -416,27 +423,46 @@ class _Run:
         return parts, statuses, rejected, ignored, affected_old
 
     def _affected(self, parts, staged_new, affected_old, changes, state):
-        """Users to re-label and the earliest time whose labels can change."""
-        files = [str(self.work / parts[n].events) for n in staged_new if parts[n].rows]
-        files += [str(self.work / p.events) for p in affected_old if p.rows and (self.work / p.events).exists()]
+        """Users to re-label over their whole history, users to continue from the carried state,
+        and the earliest time whose labels can change.
+
+        A user is continued when every event of theirs in the new partitions is later than the
+        last watermark and nothing earlier of theirs changed; users of changed or removed
+        partitions, of events at or before the watermark, and of late items take the exact path.
+        """
+        watermark = state["watermark_us"]
+        new_files = [str(self.work / parts[n].events) for n in staged_new if parts[n].rows]
+        old_files = [str(self.work / p.events) for p in affected_old if p.rows and (self.work / p.events).exists()]
         starts = [parts[n].min_ts_us for n in staged_new if parts[n].min_ts_us is not None]
         starts += [p.min_ts_us for p in affected_old if p.min_ts_us is not None]
-        users: set[str] = set()
+        exact: set[str] = set()
+        day_users: set[str] = set()
         import duckdb
         con = duckdb.connect()
-        if files:
-            users |= {r[0] for r in con.execute("SELECT DISTINCT user_id FROM read_parquet(?)", [files]).fetchall()}
+        if new_files:
+            for user, first in con.execute("SELECT user_id, min(epoch_us(ts)) FROM read_parquet(?) GROUP BY user_id",
+                                           [new_files]).fetchall():
+                (exact if first <= watermark else day_users).add(user)
+        if old_files:
+            exact |= {r[0] for r in con.execute("SELECT DISTINCT user_id FROM read_parquet(?)", [old_files]).fetchall()}
         first_seen = changes.get("first_seen") or {}
         if first_seen:
             all_files = [str(self.work / p.events) for p in parts.values() if p.rows]
             con.register("late_items", pa.table({"item_id": sorted(first_seen)}))
             got = con.execute("SELECT DISTINCT user_id FROM read_parquet(?) WHERE item_id IN "
                               "(SELECT item_id FROM late_items)", [all_files]).fetchall()
-            users |= {r[0] for r in got}
+            exact |= {r[0] for r in got}
             starts.append(min(first_seen.values()))
         if changes["added_rows"]:
-            starts.append(state["watermark_us"] + 1)
-        return sorted(users), (min(starts) if starts else None)
+            starts.append(watermark + 1)
+        return sorted(exact), sorted(day_users - exact), (min(starts) if starts else None)
+
+    def _staged(self, eng, files: list[str], users: pa.Array | None) -> StagedInput:
+        """Staged events of ``files`` as an engine table, cut to ``users`` when given."""
+        ev = eng.read_parquet(files)
+        if users is not None:
+            ev = ev.filter(ev.user_id.isin(eng.table(pa.table({"user_id": users}), "users").user_id))
+        return StagedInput(ev, source=self.cfg.interactions, rows=0, content_hash="job")
 
     def _versions(self, tax, register, parts):
         """labels_version of each output date: the taxonomy, the label settings, the tool, and the
