@@ -5,9 +5,13 @@ editorial categories, user activity drawn from a log-normal so that a few users 
 user mostly in five favourite categories), runs
 the job once over them (setup), adds one more day, times the incremental run, then times
 `--full` over the same data and prints the ratio, with the stage durations of both and the share
-of users the new day touched (the incremental run re-labels exactly those users).
+of users the new day touched (users whose new events all follow the watermark are continued
+from the carried state; the rest are re-labelled over their whole history). With
+``--consecutive N`` it then adds N more days one run at a time and prints the first and last of
+those runs' times (a daily run's cost must not grow with the history). Each run of the job goes
+in a child process, so the peak RSS printed is that run's alone.
 
-    .venv/bin/python bench/job_daily.py [--days 50 --daily 1000000 --users 1000000]
+    .venv/bin/python bench/job_daily.py [--days 50 --daily 1000000 --users 1000000 --consecutive 10]
 """
 from __future__ import annotations
 
@@ -26,7 +30,19 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from labeler import JobConfig
-from labeler.job import run_job
+
+
+def run_job_child(cfg: JobConfig, full: bool = False) -> tuple[dict, float, float]:
+    """One run of the job in a child process: (manifest, wall seconds, peak RSS in GiB)."""
+    import subprocess
+    code = ("import json, resource, sys; from labeler import JobConfig; from labeler.job import run_job\n"
+            "m = run_job(JobConfig.model_validate_json(sys.argv[1]), full=sys.argv[2] == '1').manifest\n"
+            "print(json.dumps({'manifest': m, 'rss_kib': resource.getrusage(resource.RUSAGE_SELF).ru_maxrss}))")
+    t0 = time.perf_counter()
+    out = subprocess.run([sys.executable, "-c", code, cfg.model_dump_json(), "1" if full else "0"],
+                         check=True, capture_output=True, text=True).stdout
+    got = json.loads(out.strip().splitlines()[-1])
+    return got["manifest"], time.perf_counter() - t0, got["rss_kib"] / 2**20
 
 
 def write_day(folder: Path, day: int, rows: int, weights: np.ndarray, items: int, seed: int) -> None:
@@ -57,6 +73,7 @@ def main() -> None:
     ap.add_argument("--items", type=int, default=100_000)
     ap.add_argument("--memory-limit", default="6GB")
     ap.add_argument("--workdir", default=None)
+    ap.add_argument("--consecutive", type=int, default=0, help="then N more daily runs, one day each")
     args = ap.parse_args()
     root = Path(args.workdir or tempfile.mkdtemp(prefix="labeler-job-bench-"))
     root.mkdir(parents=True, exist_ok=True)
@@ -73,27 +90,35 @@ def main() -> None:
     cfg = JobConfig(items=str(root / "items.parquet"), interactions=str(inter), work_dir=str(root / "work"),
                     run={"taxonomy_from": "categories"},
                     engine={"memory_limit": args.memory_limit, "temp_dir": str(root / "spill")})
-    t0 = time.perf_counter()
-    first = run_job(cfg).manifest
-    print(f"setup: first run over {args.days * args.daily:,} interactions {time.perf_counter() - t0:.0f}s "
-          f"{json.dumps(first['durations_s'])}", flush=True)
+    first, t_first, rss_first = run_job_child(cfg)
+    print(f"setup: first run over {args.days * args.daily:,} interactions {t_first:.0f}s, peak RSS "
+          f"{rss_first:.2f} GiB {json.dumps(first['durations_s'])}", flush=True)
     write_day(inter, args.days, args.daily, weights, args.items, seed=1)
     # the full recompute starts from the same committed state (a hard-linked copy: the job never
     # changes a file in place), so both publish the same changed store
     shutil.copytree(root / "work", root / "work-full", copy_function=os.link)
-    t0 = time.perf_counter()
-    daily = run_job(cfg).manifest
-    t_inc = time.perf_counter() - t0
-    t0 = time.perf_counter()
-    full = run_job(cfg.model_copy(update={"work_dir": str(root / "work-full")}), full=True).manifest
-    t_full = time.perf_counter() - t0
+    daily, t_inc, rss_inc = run_job_child(cfg)
+    full, t_full, rss_full = run_job_child(cfg.model_copy(update={"work_dir": str(root / "work-full")}), full=True)
     total_users = full["users"]
-    print(f"daily run (1 new partition of {args.daily:,} on top of {args.days * args.daily:,}): {t_inc:.1f}s "
-          f"{json.dumps(daily['durations_s'])}; re-labelled {daily['relabelled_users']:,} of {total_users:,} "
-          f"users ({100 * daily['relabelled_users'] / total_users:.0f}%), {len(daily['dates_rewritten'])} dates "
+    touched = daily["relabelled_users"] + daily.get("continued_users", 0)
+    print(f"daily run (1 new partition of {args.daily:,} on top of {args.days * args.daily:,}): {t_inc:.1f}s, "
+          f"peak RSS {rss_inc:.2f} GiB {json.dumps(daily['durations_s'])}; touched {touched:,} of {total_users:,} "
+          f"users ({100 * touched / total_users:.0f}%): {daily.get('continued_users', 0):,} continued from state, "
+          f"{daily['relabelled_users']:,} re-labelled over their history; {len(daily['dates_rewritten'])} dates "
           f"rewritten, {daily['dates_linked']} linked")
-    print(f"full recompute over the same data: {t_full:.1f}s {json.dumps(full['durations_s'])}")
-    print(f"ratio daily / full = {t_inc / t_full:.3f}")
+    print(f"full recompute over the same data: {t_full:.1f}s, peak RSS {rss_full:.2f} GiB "
+          f"{json.dumps(full['durations_s'])}")
+    print(f"ratio daily / full = {t_inc / t_full:.3f}", flush=True)
+    times = []
+    for k in range(args.consecutive):
+        write_day(inter, args.days + 1 + k, args.daily, weights, args.items, seed=1)
+        m, t, rss = run_job_child(cfg)
+        times.append(t)
+        print(f"  consecutive daily run {k + 1}: {t:.1f}s, peak RSS {rss:.2f} GiB {json.dumps(m['durations_s'])}",
+              flush=True)
+    if times:
+        print(f"consecutive daily runs: last / first = {times[-1] / times[0]:.2f} "
+              f"(median {sorted(times)[len(times) // 2]:.1f}s)")
     shutil.rmtree(root, ignore_errors=True)
 
 

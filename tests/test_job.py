@@ -111,8 +111,21 @@ def test_ten_daily_runs_equal_one_full_run(tmp_path, scenario, name):
         write_days(ev, root / "interactions", [day])
         m = run_job(cfg).manifest
         assert m["mode"] == "incremental" and m["relabelled_users"] == 0 and m["continued_users"] > 0, m
+        assert m["store"]["publish"] == "changed users as delta layers"
     run_job(make_config(root, work="full", labels=CONFIGS[name]))
     assert_same_outputs(root / "work", root / "full")
+    assert_same_store_answers(root / "work", root / "full", ev)
+
+
+def assert_same_store_answers(a: Path, b: Path, ev: pd.DataFrame) -> None:
+    """Every user's footprint and labels for a sample of items are the same in both jobs' stores."""
+    from labeler import open_store
+    x, y = open_store(a / "store"), open_store(b / "store")
+    items = sorted(set(ev["item_id"]))[::25] + ["no-such-item"]
+    for user in sorted(set(ev["user_id"])) + ["no-such-user"]:
+        fx, fy = x.footprint(user), y.footprint(user)
+        assert (fx.history_len, fx.topics, fx.watermark) == (fy.history_len, fy.topics, fy.watermark), user
+        assert x.classify(user, items) == y.classify(user, items), user
 
 
 def test_a_day_tying_the_watermark_takes_the_exact_path_for_its_users(tmp_path, scenario):

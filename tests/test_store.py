@@ -112,6 +112,41 @@ def test_publish_rewrites_only_changed_shards_and_keeps_retention(tmp_path):
     assert len([p for p in (root / "snapshots").iterdir() if p.name.startswith("snap-")]) == 2
 
 
+def _answers(store, users, items):
+    """Every lookup a store gives for ``users``: footprints (without the snapshot name) and labels."""
+    out = {}
+    for u in users:
+        fp = store.footprint(u)
+        out[u] = (fp.history_len, fp.topics, fp.watermark, store.classify(u, items))
+    return out
+
+
+@pytest.mark.parametrize("cfg", [LabelConfig(), LabelConfig(min_support=2, memory_days=0.01)])
+def test_publishing_changed_users_as_layers_answers_like_a_full_publish(tmp_path, cfg):
+    """Publishes of the changed users only (delta layers, then a compaction when the layers pass
+    max_layers) answer every footprint and classify exactly as a full publish of the same tables,
+    users not republished included (their rows are aged to the new watermark at lookup)."""
+    frame = LOG
+    publish_store(tmp_path / "layered", plan_labels(frame, TAX, cfg), TAX, cfg, shards=2)
+    users, items = ["ana", "ben", "cy", "dee", "nobody"], ["k1", "k2", "b1", "s1", "m1", "zz"]
+    steps = [("ana", "b1", 30), ("cy", "s1", 31), ("ana", "m1", 40), ("ben", "k1", 50), ("dee", "zz", 60)]
+    written = []
+    for k, event in enumerate(steps):
+        frame = pd.concat([frame, log(event)], ignore_index=True)
+        run = plan_labels(frame, TAX, cfg)
+        name = publish_store(tmp_path / "layered", run, TAX, cfg, shards=2, changed_users=[event[0]], max_layers=2)
+        manifest = json.loads((tmp_path / "layered" / "snapshots" / name / "manifest.json").read_text())
+        assert manifest["publish"] == "changed users as delta layers"
+        assert len(manifest["rewritten_shards"]) == 1  # one layer, or one compacted base, for one user
+        written += manifest["rewritten_shards"]
+        publish_store(tmp_path / f"full-{k}", run, TAX, cfg, shards=2)
+        got = _answers(open_store(tmp_path / "layered"), users, items)
+        assert got == _answers(open_store(tmp_path / f"full-{k}"), users, items)
+        assert manifest["users"] == len(set(frame["user_id"]))
+    assert any(".d" in f for f in written) and any(".d" not in f for f in written)  # layers, then a compaction
+    assert all(len(v) <= 2 for v in manifest["deltas"].values())
+
+
 def test_interrupted_publish_leaves_the_previous_snapshot_served(tmp_path, monkeypatch):
     """A publish that fails before the pointer switch leaves readers on the previous snapshot."""
     import labeler.store.publish as st

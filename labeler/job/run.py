@@ -201,10 +201,10 @@ class _Run:
 
         t0 = time.perf_counter()
         from ..store import publish_store
-        snapshot = publish_store(work / "store", writer.footprints.to_pandas(), view, lab,
-                                 history=writer.people.to_pandas(),
+        snapshot = publish_store(work / "store", writer.footprints, view, lab, history=writer.people,
                                  as_of=pd.Timestamp(watermark_us, unit="us", tz="UTC"),
-                                 shards=cfg.run.store_shards, retain=cfg.run.keep_generations)
+                                 shards=cfg.run.store_shards, retain=cfg.run.keep_generations,
+                                 changed_users=None if people is None else people.to_pylist())
         self._timed("store", t0)
         failpoints.hit("after_store")
 
@@ -222,7 +222,7 @@ class _Run:
             footprint_rows=writer.footprints.num_rows, users=writer.people.num_rows,
             versions={"taxonomy": tax.version, "labels_by_date": {
                 d: versions(d) for d in writer.dates_written}},
-            store={"dir": str(work / "store"), "snapshot": snapshot})
+            store={"dir": str(work / "store"), "snapshot": snapshot, "publish": _store_manifest(work, snapshot)["publish"]})
         new_state = {"format": STATE_FORMAT, "run": seq, "last_run": run_id, "generation": gen_name,
                      "watermark": manifest["watermark"], "watermark_us": watermark_us,
                      "taxonomy": {"version": tax.version, "dir": f"taxonomy/{tax.version[:16]}"},
@@ -504,6 +504,11 @@ class _Run:
         for f in reg.glob("register-*.parquet"):
             if f"items/{f.name}" != state["register"]:
                 f.unlink(missing_ok=True)
+
+
+def _store_manifest(work: Path, snapshot: str) -> dict:
+    from ..store.layout import read_manifest
+    return read_manifest(work / "store", snapshot)
 
 
 def _tombstones(store: Path) -> set[str]:

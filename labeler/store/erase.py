@@ -10,8 +10,8 @@ from typing import Iterable
 
 import pandas as pd
 
-from .layout import NEVER, tombstones, user_digest
-from .publish import publish_store
+from .layout import NEVER, shard_files, tombstones, user_digest
+from .publish import merge_layers, publish_store, read_shard
 from .reader import Store
 
 log = logging.getLogger(__name__)
@@ -43,20 +43,13 @@ def forget_users(path, user_ids: Iterable[str], outputs: Iterable = ()) -> str:
     tmp.write_text(json.dumps(sorted(tomb)))
     os.replace(tmp, root / "tombstones.json")
     frames, users = [], []
-    for fname in store.manifest["shards"]:
-        con = store._con(fname)
-        f = pd.read_sql_query("SELECT * FROM topics", con).drop(columns="history_len")
-        u = pd.read_sql_query("SELECT * FROM users", con)
+    for shard in store.manifest["shards"]:
+        f, u = merge_layers([read_shard(store._folder / f) for f in shard_files(store.manifest, shard)])
         frames.append(f)
         users.append(u)
     fp = pd.concat(frames, ignore_index=True)
-    fp = fp.rename(columns={"first_us": "first_ts", "last_us": "last_ts", "known_since_us": "known_since"})
-    for c in ("first_ts", "last_ts", "known_since"):
-        fp[c] = pd.to_datetime(fp[c], unit="us", utc=True)
-    fp["recent_us"] = fp.pop("recent").map(json.loads)
-    fp["known"] = fp["known"].astype(bool)
     hist = pd.concat(users, ignore_index=True)
-    fp = fp.merge(hist, on="user_id", how="left")
+    fp = fp.drop(columns="history_len").merge(hist, on="user_id", how="left")
     tax = _StoredTaxonomy(store)
     name = publish_store(root, fp, tax, store.config, history=hist, as_of=store.watermark,
                          shards=store.manifest["n_shards"], retain=1)

@@ -12,7 +12,7 @@ import pandas as pd
 
 from ..errors import ArtifactError
 
-FORMAT = "labeler-store/2"  # 2: 16 KiB pages, history_len on every topic row (one lookup per user)
+FORMAT = "labeler-store/3"  # 2: 16 KiB pages, history_len on every topic row; 3: delta layers per shard
 PAGE_SIZE = 16384
 NEVER = np.iinfo("int64").min
 
@@ -21,6 +21,11 @@ def shard_of(user_id: str, shards: int) -> int:
     """Stable shard number of a user id (BLAKE2b, independent of Python's hash seed)."""
     return int.from_bytes(hashlib.blake2b(user_id.encode("utf-8", "surrogatepass"), digest_size=8).digest(),
                           "little") % shards
+
+
+def shard_files(manifest: dict, shard: str) -> list[str]:
+    """The files of one shard, oldest first: its base file, then its delta layers."""
+    return [shard, *manifest.get("deltas", {}).get(shard, [])]
 
 
 def user_digest(user_id: str) -> str:

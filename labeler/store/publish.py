@@ -1,4 +1,12 @@
-"""Publishing snapshots: shards written in parallel, unchanged ones hard-linked, pointer switched last."""
+"""Publishing snapshots: shards written in parallel, unchanged ones hard-linked, pointer switched last.
+
+A full publish writes every shard whose content changed. A publish of the users that changed
+(``changed_users``, the job's daily path) writes, per shard holding such users, one small delta
+layer with just their rows, and hard-links the shard's base file and earlier layers; readers look
+a user up in the newest layer that holds them. A shard whose layers would pass ``max_layers``, or
+hold more users than ``compact_share`` of its base, is compacted: its layers are merged into a new
+base file. So a day's publish costs what the day changed, and a lookup stays a few B-tree probes.
+"""
 from __future__ import annotations
 
 import datetime as dt
@@ -13,6 +21,8 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
 
 from .. import __version__
 from ..config import LabelConfig
@@ -26,13 +36,20 @@ log = logging.getLogger(__name__)
 
 def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None, *,
                   history: pd.DataFrame | None = None, as_of=None, shards: int = 16,
-                  retain: int = 3, workers: int | None = None) -> str:
+                  retain: int = 3, workers: int | None = None, changed_users=None,
+                  compact_share: float = 0.5, max_layers: int = 8) -> str:
     """Publish a new store snapshot from a footprints table; returns the snapshot name.
 
-    ``footprints`` is what :func:`labeler.build_footprints` returns (or a :class:`LabelRun`).
-    Its ``history_len`` and ``recent_us`` columns let lookups apply ``warmup`` and memory windows;
-    ``history`` (user_id, history_len) adds users whose every interaction was unplaced. Shards
-    are written in parallel by ``workers`` threads (default: one per core).
+    ``footprints`` is what :func:`labeler.build_footprints` returns (or a :class:`LabelRun`, or an
+    Arrow table with the same columns). Its ``history_len`` and ``recent_us`` columns let lookups
+    apply ``warmup`` and memory windows; ``history`` (user_id, history_len) adds users whose every
+    interaction was unplaced. Shards are written in parallel by ``workers`` threads (default: one
+    per core).
+
+    ``changed_users``: the only users whose rows differ from the current snapshot's (every other
+    user's rows are as published before; lookups age them to the new watermark). When the current
+    snapshot has this format, shard count, taxonomy and settings, only those users' rows are
+    written, as delta layers; otherwise the publish is full and the tables must hold everyone.
     """
     from ..labelling import LabelRun
     cfg = config or LabelConfig()
@@ -41,12 +58,17 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
         as_of = as_of if as_of is not None else pd.Timestamp(run.as_of_us, unit="us", tz="UTC")
         footprints = run.footprints_frame()
         history = run.history_frame() if history is None else history
+    root = Path(path)
+    previous = read_manifest(root, current_name(root), any_format=True) if (root / "CURRENT").exists() else None
+    layered = changed_users is not None and _layerable(previous, shards, taxonomy, cfg)
+    only = pa.array([str(u) for u in changed_users], pa.string()) if layered else None
+    footprints = _frame(footprints, only)
+    history = None if history is None else _frame(history, only)
     missing = [c for c in ("user_id", "level", "topic_id", "interactions", "known", "history_len",
                            "recent_us", "last_ts") if c not in footprints.columns]
     if missing:
         raise InputError(f"missing column(s) {missing}: publish a table from labeler.build_footprints "
                          "or a LabelRun.", source="footprints", column=missing[0])
-    root = Path(path)
     (root / "snapshots").mkdir(parents=True, exist_ok=True)
     gone = tombstones(root)
     fp = footprints.copy()
@@ -60,7 +82,6 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
         users = pd.concat([users, extra[["user_id", "history_len"]]], ignore_index=True)
     watermark = to_us(as_of) if as_of is not None else to_us(fp["last_ts"].max()) if len(fp) else None
 
-    previous = read_manifest(root, current_name(root), any_format=True) if (root / "CURRENT").exists() else None
     seq = (previous["sequence"] + 1) if previous else 1
     name = f"snap-{seq:06d}-{uuid.uuid4().hex[:8]}"
     tmp = root / "snapshots" / f".{name}.tmp"
@@ -68,27 +89,25 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
     _write_items(tmp / "items.sqlite", taxonomy)
     users["_shard"] = [shard_of(u, shards) for u in users["user_id"]]
     fp["_shard"] = fp["user_id"].map(pd.Series(users["_shard"].to_numpy(), index=users["user_id"].to_numpy()))
-    shard_info, to_write, rewritten = {}, [], []
-    by_shard_fp, by_shard_users = dict(tuple(fp.groupby("_shard"))), dict(tuple(users.groupby("_shard")))
-    for k in range(shards):
-        f_k = by_shard_fp.get(k, fp.iloc[:0])
-        u_k = by_shard_users.get(k, users.iloc[:0])
-        digest = _shard_digest(f_k, u_k)
-        fname = f"users-{k:02d}.sqlite"
-        prev = (previous or {}).get("shards", {}).get(fname)
-        if prev and prev["digest"] == digest and previous["n_shards"] == shards and previous["format"] == FORMAT:
-            os.link(root / "snapshots" / previous["name"] / fname, tmp / fname)
-        else:
-            to_write.append((tmp / fname, f_k, u_k))
-            rewritten.append(fname)
-        shard_info[fname] = {"digest": digest, "users": int(len(u_k)), "rows": int(len(f_k))}
+    pieces = {k: (f, None) for k, f in fp.groupby("_shard")}
+    pieces = {k: (pieces.get(k, (fp.iloc[:0], None))[0], u) for k, u in users.groupby("_shard")}
+    empty = (fp.iloc[:0], users.iloc[:0])
+    if layered:
+        plan = _plan_layers(root / "snapshots" / previous["name"], previous, tmp, seq, pieces, empty,
+                            compact_share, max_layers)
+    else:
+        plan = _plan_full(root, previous, tmp, shards, pieces, empty)
+    shard_info, deltas, to_write, rewritten = plan
     with ThreadPoolExecutor(max_workers=max(1, min(workers or os.cpu_count() or 1, len(to_write) or 1))) as pool:
         for fut in [pool.submit(_write_shard, *job) for job in to_write]:
             fut.result()  # re-raises a failed write before anything is published
     manifest = {"format": FORMAT, "name": name, "sequence": seq, "tool_version": __version__,
                 "created": dt.datetime.now(dt.timezone.utc).isoformat(), "watermark_us": watermark,
                 "taxonomy_version": taxonomy.version, "config": json.loads(cfg.canonical_json()),
-                "n_shards": shards, "shards": shard_info, "users": int(len(users)),
+                "n_shards": shards, "shards": shard_info, "deltas": deltas,
+                "users": (previous["users"] + sum(v["new_users"] for v in shard_info.values())) if layered
+                else int(len(users)),
+                "publish": "changed users as delta layers" if layered else "full",
                 "rewritten_shards": rewritten}
     (tmp / "manifest.json").write_text(json.dumps(manifest, indent=2, sort_keys=True) + "\n")
     for f in tmp.iterdir():
@@ -105,9 +124,133 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
     os.replace(pointer, root / "CURRENT")
     fsync_dir(root)
     clean(root, keep=retain)
-    log.info("published store snapshot %s: %d users, %d footprint rows, %d of %d shards rewritten", name,
-             len(users), len(fp), len(manifest["rewritten_shards"]), shards)
+    log.info("published store snapshot %s (%s): %d users and %d footprint rows written to %d files", name,
+             manifest["publish"], len(users), len(fp), len(rewritten))
     return name
+
+
+def _frame(table, only: pa.Array | None) -> pd.DataFrame:
+    """A pandas frame of an Arrow table or a frame, cut to the users ``only`` when given."""
+    if isinstance(table, pa.Table):
+        if only is not None:
+            table = table.filter(pc.is_in(table.column("user_id"), value_set=only))
+        return table.to_pandas()
+    if only is not None:
+        return table[table["user_id"].astype(str).isin(set(only.to_pylist()))]
+    return table
+
+
+def _layerable(previous: dict | None, shards: int, taxonomy, cfg: LabelConfig) -> bool:
+    """Whether a publish of the changed users can be layered onto the current snapshot."""
+    return (previous is not None and previous.get("format") == FORMAT and previous["n_shards"] == shards
+            and previous["taxonomy_version"] == taxonomy.version
+            and previous["config"] == json.loads(cfg.canonical_json()))
+
+
+def _plan_full(root: Path, previous: dict | None, tmp: Path, shards: int, pieces: dict, empty):
+    """Every shard from the complete tables; one with the previous digest and no layers is linked."""
+    shard_info, to_write, rewritten = {}, [], []
+    for k in range(shards):
+        f_k, u_k = pieces.get(k, empty)
+        digest = _shard_digest(f_k, u_k)
+        fname = f"users-{k:02d}.sqlite"
+        prev = (previous or {}).get("shards", {}).get(fname)
+        if prev and prev["digest"] == digest and previous["n_shards"] == shards and previous["format"] == FORMAT \
+                and not previous.get("deltas", {}).get(fname):
+            os.link(root / "snapshots" / previous["name"] / fname, tmp / fname)
+        else:
+            to_write.append((tmp / fname, f_k, u_k))
+            rewritten.append(fname)
+        shard_info[fname] = {"digest": digest, "users": int(len(u_k)), "rows": int(len(f_k))}
+    return shard_info, {}, to_write, rewritten
+
+
+def _plan_layers(prev_dir: Path, previous: dict, tmp: Path, seq: int, pieces: dict, empty,
+                 compact_share: float, max_layers: int):
+    """Per shard: linked as it was, a delta layer of its changed users on top, or compacted.
+
+    A shard's ``users`` and ``rows`` count its base file; ``layer_users`` and ``layer_rows`` its
+    delta layers together; ``new_users`` how many changed users the snapshot did not hold before.
+    """
+    shard_info, deltas, to_write, rewritten = {}, {}, [], []
+    for k in range(previous["n_shards"]):
+        fname = f"users-{k:02d}.sqlite"
+        info = dict(previous["shards"][fname])
+        layers = list(previous.get("deltas", {}).get(fname, []))
+        f_k, u_k = pieces.get(k, empty)
+        in_layers = info.get("layer_users", 0) + len(u_k)
+        if len(u_k) == 0:
+            info["new_users"] = 0
+        elif len(layers) + 1 > max_layers or in_layers > compact_share * max(info["users"], 1):
+            old = [read_shard(prev_dir / f) for f in [fname, *layers]]
+            before = set().union(*(set(u["user_id"]) for _, u in old))
+            f_k, u_k = merge_layers(old + [(f_k, u_k)])
+            to_write.append((tmp / fname, f_k, u_k))
+            rewritten.append(fname)
+            info = {"digest": _shard_digest(f_k, u_k), "users": int(len(u_k)), "rows": int(len(f_k)),
+                    "new_users": int(len(u_k) - len(before))}
+            layers = []
+        else:
+            layer = f"users-{k:02d}.d{seq:06d}.sqlite"
+            held = _held(prev_dir, [fname, *layers], u_k["user_id"])
+            to_write.append((tmp / layer, f_k, u_k))
+            rewritten.append(layer)
+            layers.append(layer)
+            info.update(digest=hashlib.sha256(f"{info['digest']}\x00{_shard_digest(f_k, u_k)}".encode()).hexdigest(),
+                        layer_users=in_layers, layer_rows=info.get("layer_rows", 0) + int(len(f_k)),
+                        new_users=int(len(u_k)) - held)
+        for f in [fname, *layers]:
+            if f not in rewritten:  # the files kept as they were (new_users counted before the link)
+                os.link(prev_dir / f, tmp / f)
+        shard_info[fname] = info
+        if layers:
+            deltas[fname] = layers
+    return shard_info, deltas, to_write, rewritten
+
+
+def _held(folder: Path, files: list[str], user_ids: pd.Series) -> int:
+    """How many of ``user_ids`` the shard files hold already."""
+    found: set[str] = set()
+    ids = [(str(u),) for u in user_ids]
+    for f in files:
+        con = sqlite3.connect(f"file:{folder / f}?mode=ro&immutable=1", uri=True)
+        try:
+            con.execute("CREATE TEMP TABLE q (user_id TEXT PRIMARY KEY) WITHOUT ROWID")
+            con.executemany("INSERT OR IGNORE INTO q VALUES (?)", ids)
+            found |= {r[0] for r in con.execute("SELECT q.user_id FROM q JOIN users USING (user_id)")}
+        finally:
+            con.close()
+    return len(found)
+
+
+def read_shard(path: Path) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """(footprint rows, users) of one shard file, in the shape ``publish_store`` takes."""
+    con = sqlite3.connect(f"file:{path}?mode=ro&immutable=1", uri=True)
+    try:
+        fp = pd.read_sql_query("SELECT * FROM topics", con)
+        users = pd.read_sql_query("SELECT * FROM users", con)
+    finally:
+        con.close()
+    fp = fp.rename(columns={"first_us": "first_ts", "last_us": "last_ts", "known_since_us": "known_since"})
+    for c in ("first_ts", "last_ts", "known_since"):
+        fp[c] = pd.to_datetime(fp[c], unit="us", utc=True)
+    fp["recent_us"] = fp.pop("recent").map(json.loads)
+    fp["known"] = fp["known"].astype(bool)
+    return fp, users
+
+
+def merge_layers(layers: list[tuple[pd.DataFrame, pd.DataFrame]]) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """One shard's rows from its layers, oldest first: each user's rows come from the newest layer
+    that holds the user."""
+    users = pd.concat([u[["user_id", "history_len"]].assign(_layer=i) for i, (_, u) in enumerate(layers)],
+                      ignore_index=True)
+    users = users.sort_values("_layer", kind="stable").drop_duplicates("user_id", keep="last")
+    newest = pd.Series(users["_layer"].to_numpy(), index=users["user_id"].to_numpy())
+    fp = pd.concat([f.drop(columns=[c for c in f.columns if c.startswith("_")]).assign(_layer=i)
+                    for i, (f, _) in enumerate(layers)], ignore_index=True)
+    fp = fp[fp["user_id"].map(newest).to_numpy() == fp["_layer"].to_numpy()].drop(columns="_layer")
+    return (fp.sort_values(["user_id", "level", "topic_id"]).reset_index(drop=True),
+            users.drop(columns="_layer").sort_values("user_id").reset_index(drop=True))
 
 
 def _recent_text(values: pd.Series) -> list[str]:

@@ -13,7 +13,7 @@ import pandas as pd
 
 from ..config import LabelConfig
 from ..errors import ArtifactError, InputError
-from .layout import current_name, read_manifest, shard_of, to_us
+from .layout import current_name, read_manifest, shard_files, shard_of, to_us
 
 @dataclasses.dataclass(frozen=True)
 class TopicState:
@@ -57,6 +57,10 @@ class Classification:
     topic_name: str | None
 
 
+_TOPICS = ("SELECT level, topic_id, interactions, engaged_interactions, known, first_us, last_us, known_since_us, "
+           "recent, history_len FROM topics WHERE user_id = ?")
+
+
 def _ts(us) -> pd.Timestamp | None:
     return None if us is None else pd.Timestamp(us, unit="us", tz="UTC")
 
@@ -73,7 +77,8 @@ class Store:
     def _load(self, name: str) -> None:
         manifest = read_manifest(self.root, name)
         folder = self.root / "snapshots" / name
-        for f in ["items.sqlite", *manifest["shards"]]:
+        files = [f for shard in manifest["shards"] for f in shard_files(manifest, shard)]
+        for f in ["items.sqlite", *files]:
             if not (folder / f).exists():
                 raise ArtifactError(f"{folder}: file '{f}' is missing; the snapshot is damaged. Publish again.")
         with self._lock:
@@ -106,12 +111,18 @@ class Store:
         return con
 
     def _user(self, user_id: str):
-        """(history length, topic rows) of one user: one range read of the clustered topics table;
-        only a user without topic rows is looked up in ``users``."""
-        con = self._con(f"users-{shard_of(user_id, self.manifest['n_shards']):02d}.sqlite")
-        topics = con.execute("SELECT level, topic_id, interactions, engaged_interactions, known, first_us, last_us, "
-                             "known_since_us, recent, history_len FROM topics WHERE user_id = ?",
-                             (user_id,)).fetchall()
+        """(history length, topic rows) of one user, from the newest layer of their shard that
+        holds them. In the base file this is one range read of the clustered topics table (only a
+        user without topic rows is looked up in ``users``); a delta layer is asked for the user
+        first, since most users are not in it."""
+        shard = f"users-{shard_of(user_id, self.manifest['n_shards']):02d}.sqlite"
+        for layer in reversed(self.manifest.get("deltas", {}).get(shard, ())):
+            con = self._con(layer)
+            row = con.execute("SELECT history_len FROM users WHERE user_id = ?", (user_id,)).fetchone()
+            if row is not None:
+                return row[0], con.execute(_TOPICS, (user_id,)).fetchall()
+        con = self._con(shard)
+        topics = con.execute(_TOPICS, (user_id,)).fetchall()
         if topics:
             return topics[0][9], topics
         row = con.execute("SELECT history_len FROM users WHERE user_id = ?", (user_id,)).fetchone()
@@ -129,8 +140,11 @@ class Store:
         history, rows = self._user(str(user_id))
         rows = [r for r in rows if level is None or r[0] == level]
         names = self._names(r[1] for r in rows)
-        topics = tuple(TopicState(r[1], r[0], names.get(r[1], r[1]), bool(r[4]), r[2], r[3], _ts(r[5]), _ts(r[6]),
-                                  _ts(r[7])) for r in sorted(rows, key=lambda r: (r[0], -r[2], r[1])))
+        now = self._at(None)  # rows published earlier are aged to this snapshot's watermark
+        known = {(r[0], r[1]) for r in rows if r[4] and _known(r, now, self.config)}
+        topics = tuple(TopicState(r[1], r[0], names.get(r[1], r[1]), (r[0], r[1]) in known, r[2], r[3], _ts(r[5]),
+                                  _ts(r[6]), _ts(r[7]) if (r[0], r[1]) in known else None)
+                       for r in sorted(rows, key=lambda r: (r[0], -r[2], r[1])))
         return Footprint(str(user_id), history, topics, self.watermark, self.manifest["taxonomy_version"], self.name)
 
     def preload(self) -> "Store":
