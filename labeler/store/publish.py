@@ -86,25 +86,29 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
     name = f"snap-{seq:06d}-{uuid.uuid4().hex[:8]}"
     tmp = root / "snapshots" / f".{name}.tmp"
     tmp.mkdir()
-    _write_items(tmp / "items.sqlite", taxonomy)
-    users["_shard"] = [shard_of(u, shards) for u in users["user_id"]]
-    fp["_shard"] = fp["user_id"].map(pd.Series(users["_shard"].to_numpy(), index=users["user_id"].to_numpy()))
-    pieces = {k: (f, None) for k, f in fp.groupby("_shard")}
-    pieces = {k: (pieces.get(k, (fp.iloc[:0], None))[0], u) for k, u in users.groupby("_shard")}
-    empty = (fp.iloc[:0], users.iloc[:0])
+    items_digest = _items(tmp / "items.sqlite", taxonomy, previous, root)
+    topics, people = _shard_rows(fp, users)
+    pieces = _by_shard(topics, people, shards)
     if layered:
-        plan = _plan_layers(root / "snapshots" / previous["name"], previous, tmp, seq, pieces, empty,
-                            compact_share, max_layers)
+        plan = _plan_layers(root / "snapshots" / previous["name"], previous, tmp, seq, pieces, compact_share,
+                            max_layers)
     else:
-        plan = _plan_full(root, previous, tmp, shards, pieces, empty)
+        plan = _plan_full(root, previous, tmp, shards, pieces)
     shard_info, deltas, to_write, rewritten = plan
     with ThreadPoolExecutor(max_workers=max(1, min(workers or os.cpu_count() or 1, len(to_write) or 1))) as pool:
         for fut in [pool.submit(_write_shard, *job) for job in to_write]:
             fut.result()  # re-raises a failed write before anything is published
+    for fname, info in shard_info.items():
+        if info.get("users") is None:  # compacted: count what the merge kept
+            con = sqlite3.connect(f"file:{tmp / fname}?mode=ro", uri=True)
+            info["users"], info["rows"] = (con.execute(f"SELECT count(*) FROM {t}").fetchone()[0]
+                                           for t in ("users", "topics"))
+            con.close()
+            info["new_users"] = info["users"] - info.pop("users_before")
     manifest = {"format": FORMAT, "name": name, "sequence": seq, "tool_version": __version__,
                 "created": dt.datetime.now(dt.timezone.utc).isoformat(), "watermark_us": watermark,
                 "taxonomy_version": taxonomy.version, "config": json.loads(cfg.canonical_json()),
-                "n_shards": shards, "shards": shard_info, "deltas": deltas,
+                "items_digest": items_digest, "n_shards": shards, "shards": shard_info, "deltas": deltas,
                 "users": (previous["users"] + sum(v["new_users"] for v in shard_info.values())) if layered
                 else int(len(users)),
                 "publish": "changed users as delta layers" if layered else "full",
@@ -147,60 +151,58 @@ def _layerable(previous: dict | None, shards: int, taxonomy, cfg: LabelConfig) -
             and previous["config"] == json.loads(cfg.canonical_json()))
 
 
-def _plan_full(root: Path, previous: dict | None, tmp: Path, shards: int, pieces: dict, empty):
+def _plan_full(root: Path, previous: dict | None, tmp: Path, shards: int, pieces: list):
     """Every shard from the complete tables; one with the previous digest and no layers is linked."""
     shard_info, to_write, rewritten = {}, [], []
-    for k in range(shards):
-        f_k, u_k = pieces.get(k, empty)
-        digest = _shard_digest(f_k, u_k)
+    for k, (t_k, u_k) in enumerate(pieces):
+        digest = _shard_digest(t_k, u_k)
         fname = f"users-{k:02d}.sqlite"
         prev = (previous or {}).get("shards", {}).get(fname)
         if prev and prev["digest"] == digest and previous["n_shards"] == shards and previous["format"] == FORMAT \
                 and not previous.get("deltas", {}).get(fname):
             os.link(root / "snapshots" / previous["name"] / fname, tmp / fname)
         else:
-            to_write.append((tmp / fname, f_k, u_k))
+            to_write.append((tmp / fname, t_k, u_k))
             rewritten.append(fname)
-        shard_info[fname] = {"digest": digest, "users": int(len(u_k)), "rows": int(len(f_k))}
+        shard_info[fname] = {"digest": digest, "users": u_k.num_rows, "rows": t_k.num_rows}
     return shard_info, {}, to_write, rewritten
 
 
-def _plan_layers(prev_dir: Path, previous: dict, tmp: Path, seq: int, pieces: dict, empty,
-                 compact_share: float, max_layers: int):
+def _plan_layers(prev_dir: Path, previous: dict, tmp: Path, seq: int, pieces: list, compact_share: float,
+                 max_layers: int):
     """Per shard: linked as it was, a delta layer of its changed users on top, or compacted.
 
     A shard's ``users`` and ``rows`` count its base file; ``layer_users`` and ``layer_rows`` its
     delta layers together; ``new_users`` how many changed users the snapshot did not hold before.
+    Compacting merges the base, the layers and the changed users' rows into a new base inside
+    SQLite (each user's rows from the newest source holding them), so it costs a copy, not a
+    re-encoding of every row.
     """
     shard_info, deltas, to_write, rewritten = {}, {}, [], []
-    for k in range(previous["n_shards"]):
+    for k, (t_k, u_k) in enumerate(pieces):
         fname = f"users-{k:02d}.sqlite"
         info = dict(previous["shards"][fname])
         layers = list(previous.get("deltas", {}).get(fname, []))
-        f_k, u_k = pieces.get(k, empty)
-        in_layers = info.get("layer_users", 0) + len(u_k)
-        if len(u_k) == 0:
+        sources = [prev_dir / f for f in [fname, *layers]]
+        in_layers = info.get("layer_users", 0) + u_k.num_rows
+        if u_k.num_rows == 0:
             info["new_users"] = 0
         elif len(layers) + 1 > max_layers or in_layers > compact_share * max(info["users"], 1):
-            old = [read_shard(prev_dir / f) for f in [fname, *layers]]
-            before = set().union(*(set(u["user_id"]) for _, u in old))
-            f_k, u_k = merge_layers(old + [(f_k, u_k)])
-            to_write.append((tmp / fname, f_k, u_k))
+            before = info["users"] + info.get("layer_users", 0) - info.get("layer_repeats", 0)
+            to_write.append((tmp / fname, t_k, u_k, sources))
             rewritten.append(fname)
-            info = {"digest": _shard_digest(f_k, u_k), "users": int(len(u_k)), "rows": int(len(f_k)),
-                    "new_users": int(len(u_k) - len(before))}
+            info = {"digest": None, "users": None, "rows": None, "new_users": None, "users_before": before}
             layers = []
         else:
+            held = _held(sources, u_k.column("user_id"))
             layer = f"users-{k:02d}.d{seq:06d}.sqlite"
-            held = _held(prev_dir, [fname, *layers], u_k["user_id"])
-            to_write.append((tmp / layer, f_k, u_k))
+            to_write.append((tmp / layer, t_k, u_k))
             rewritten.append(layer)
             layers.append(layer)
-            info.update(digest=hashlib.sha256(f"{info['digest']}\x00{_shard_digest(f_k, u_k)}".encode()).hexdigest(),
-                        layer_users=in_layers, layer_rows=info.get("layer_rows", 0) + int(len(f_k)),
-                        new_users=int(len(u_k)) - held)
+            info.update(layer_users=in_layers, layer_rows=info.get("layer_rows", 0) + t_k.num_rows,
+                        layer_repeats=info.get("layer_repeats", 0) + held, new_users=u_k.num_rows - held)
         for f in [fname, *layers]:
-            if f not in rewritten:  # the files kept as they were (new_users counted before the link)
+            if f not in rewritten:  # the files kept as they were
                 os.link(prev_dir / f, tmp / f)
         shard_info[fname] = info
         if layers:
@@ -208,15 +210,15 @@ def _plan_layers(prev_dir: Path, previous: dict, tmp: Path, seq: int, pieces: di
     return shard_info, deltas, to_write, rewritten
 
 
-def _held(folder: Path, files: list[str], user_ids: pd.Series) -> int:
+def _held(files: list[Path], user_ids: pa.Array) -> int:
     """How many of ``user_ids`` the shard files hold already."""
     found: set[str] = set()
-    ids = [(str(u),) for u in user_ids]
+    ids = [(u,) for u in user_ids.to_pylist()]
     for f in files:
-        con = sqlite3.connect(f"file:{folder / f}?mode=ro&immutable=1", uri=True)
+        con = sqlite3.connect(f"file:{f}?mode=ro&immutable=1", uri=True)
         try:
             con.execute("CREATE TEMP TABLE q (user_id TEXT PRIMARY KEY) WITHOUT ROWID")
-            con.executemany("INSERT OR IGNORE INTO q VALUES (?)", ids)
+            con.executemany("INSERT INTO q VALUES (?)", ids)
             found |= {r[0] for r in con.execute("SELECT q.user_id FROM q JOIN users USING (user_id)")}
         finally:
             con.close()
@@ -253,63 +255,128 @@ def merge_layers(layers: list[tuple[pd.DataFrame, pd.DataFrame]]) -> tuple[pd.Da
             users.drop(columns="_layer").sort_values("user_id").reset_index(drop=True))
 
 
-def _recent_text(values: pd.Series) -> list[str]:
+TOPIC_COLUMNS = ("user_id", "level", "topic_id", "interactions", "engaged_interactions", "known", "first_us",
+                 "last_us", "known_since_us", "recent", "history_len")
+
+
+def _us(values) -> pa.Array:
+    """Timestamps as int64 microseconds (null stays null)."""
+    ts = pd.to_datetime(pd.Series(values), utc=True).astype("datetime64[us, UTC]")
+    return pa.array(ts).cast(pa.int64())
+
+
+def _recent_text(values) -> pa.Array:
     """The last qualifying times as JSON arrays ("[1, 2]"), built column-wise."""
-    import pyarrow as pa
-    import pyarrow.compute as pc
-    arr = pa.array([None if v is None else sorted(int(x) for x in v) for v in values], pa.list_(pa.int64()))
+    arr = values if isinstance(values, (pa.Array, pa.ChunkedArray)) else pa.array(list(values), pa.list_(pa.int64()))
     text = pc.binary_join(pc.cast(arr, pa.list_(pa.string())), ", ")
-    return pc.binary_join_element_wise("[", pc.fill_null(text, ""), "]", "").to_pylist()
+    return pc.binary_join_element_wise("[", pc.fill_null(text, ""), "]", "")
 
 
-def _us_list(values) -> list:
-    """Timestamps as int microseconds, None for missing, column-wise."""
-    ts = pd.to_datetime(pd.Series(values), utc=True)
-    us = ts.astype("datetime64[us, UTC]").astype("int64").to_numpy()
-    return np.where(ts.isna().to_numpy(), None, us).tolist()
+def _shard_rows(fp: pd.DataFrame, users: pd.DataFrame) -> tuple[pa.Table, pa.Table]:
+    """(topic rows, users) as Arrow tables in the shards' column layout, sorted by their keys."""
+    people = pa.table({"user_id": pa.array(users["user_id"].astype(str), pa.string()),
+                       "history_len": pa.array(users["history_len"].fillna(0).astype("int64"), pa.int64())})
+    people = people.take(pc.sort_indices(people, [("user_id", "ascending")]))
+    user_id = pa.array(fp["user_id"].astype(str), pa.string())
+    n = len(fp)
+    none = pd.Series([None] * n, dtype="datetime64[us, UTC]")
+    topics = pa.table({
+        "user_id": user_id, "level": pa.array(fp["level"].astype("int64"), pa.int64()),
+        "topic_id": pa.array(fp["topic_id"].astype(str), pa.string()),
+        "interactions": pa.array(fp["interactions"].astype("int64"), pa.int64()),
+        "engaged_interactions": pa.array(fp.get("engaged_interactions", fp["interactions"]).astype("int64"), pa.int64()),
+        "known": pa.array(fp["known"].astype(bool).astype("int64"), pa.int64()),
+        "first_us": _us(fp.get("first_ts", fp["last_ts"])), "last_us": _us(fp["last_ts"]),
+        "known_since_us": _us(fp["known_since"] if "known_since" in fp.columns else none),
+        "recent": _recent_text(fp["recent_us"]),
+        "history_len": people.column("history_len").take(pc.index_in(user_id, value_set=people.column("user_id")))})
+    topics = topics.take(pc.sort_indices(topics, [("user_id", "ascending"), ("level", "ascending"),
+                                                  ("topic_id", "ascending")]))
+    return topics, people
 
 
-def _shard_digest(fp: pd.DataFrame, users: pd.DataFrame) -> str:
+def _by_shard(topics: pa.Table, people: pa.Table, shards: int) -> list[tuple[pa.Table, pa.Table]]:
+    """Each shard's (topic rows, users), in key order."""
+    ids = people.column("user_id").to_pylist()
+    shard = pa.array(np.fromiter((shard_of(u, shards) for u in ids), dtype=np.int64, count=len(ids)))
+    topic_shard = shard.take(pc.index_in(topics.column("user_id"), value_set=people.column("user_id")))
+    return [(topics.filter(pc.equal(topic_shard, k)), people.filter(pc.equal(shard, k))) for k in range(shards)]
+
+
+def _shard_digest(topics: pa.Table, people: pa.Table) -> str:
     """Order-independent content hash of one shard's rows (sum of pandas' 64-bit row hashes)."""
-    cols = [c for c in ("user_id", "level", "topic_id", "interactions", "engaged_interactions", "known",
-                        "first_ts", "last_ts", "known_since") if c in fp.columns]
-    parts = [fp[cols], pd.Series(_recent_text(fp["recent_us"]), index=fp.index, name="recent")]
-    rows = pd.util.hash_pandas_object(pd.concat(parts, axis=1), index=False).to_numpy(np.uint64)
-    urows = pd.util.hash_pandas_object(users[["user_id", "history_len"]], index=False).to_numpy(np.uint64)
+    rows = pd.util.hash_pandas_object(topics.to_pandas(), index=False).to_numpy(np.uint64)
+    urows = pd.util.hash_pandas_object(people.to_pandas(), index=False).to_numpy(np.uint64)
     total = (int(rows.sum(dtype=np.uint64)), int(urows.sum(dtype=np.uint64)), len(rows), len(urows))
     return hashlib.sha256(repr(total).encode()).hexdigest()
 
 
-def _write_shard(path: Path, fp: pd.DataFrame, users: pd.DataFrame) -> None:
-    """One shard: ``users`` (every user, for those without topic rows) and ``topics``, clustered by
-    user id. Each topic row repeats the user's history length, so that a lookup is one range read
-    in one B-tree. With 16 KiB pages a shard of 62,500 users x 20 topics is a three-level tree with
-    34 interior pages, soon cached, so a cold lookup reads about one page from disk."""
+_SCHEMA = f"""
+    PRAGMA page_size = {PAGE_SIZE}; PRAGMA journal_mode = OFF; PRAGMA synchronous = OFF;
+    CREATE TABLE users (user_id TEXT PRIMARY KEY, history_len INTEGER NOT NULL) WITHOUT ROWID;
+    CREATE TABLE topics (user_id TEXT NOT NULL, level INTEGER NOT NULL, topic_id TEXT NOT NULL,
+        interactions INTEGER, engaged_interactions INTEGER, known INTEGER, first_us INTEGER,
+        last_us INTEGER, known_since_us INTEGER, recent TEXT, history_len INTEGER NOT NULL,
+        PRIMARY KEY (user_id, level, topic_id)) WITHOUT ROWID;"""
+
+
+def _write_shard(path: Path, topics: pa.Table, people: pa.Table, merge: list[Path] = ()) -> None:
+    """One shard file: ``users`` (every user, for those without topic rows) and ``topics``,
+    clustered by user id. Each topic row repeats the user's history length, so that a lookup is
+    one range read in one B-tree. With 16 KiB pages a shard of 62,500 users x 20 topics is a
+    three-level tree with 34 interior pages, soon cached, so a cold lookup reads about one page.
+
+    With ``merge`` (a shard's files, oldest first) the rows are those of ``topics``/``people``
+    plus, for every other user, their rows in the newest of those files that holds them; rows
+    are inserted in key order, so the new file is as compact as one written from scratch.
+    """
     con = sqlite3.connect(path)
-    con.executescript(f"""
-        PRAGMA page_size = {PAGE_SIZE}; PRAGMA journal_mode = OFF; PRAGMA synchronous = OFF;
-        CREATE TABLE users (user_id TEXT PRIMARY KEY, history_len INTEGER NOT NULL) WITHOUT ROWID;
-        CREATE TABLE topics (user_id TEXT NOT NULL, level INTEGER NOT NULL, topic_id TEXT NOT NULL,
-            interactions INTEGER, engaged_interactions INTEGER, known INTEGER, first_us INTEGER,
-            last_us INTEGER, known_since_us INTEGER, recent TEXT, history_len INTEGER NOT NULL,
-            PRIMARY KEY (user_id, level, topic_id)) WITHOUT ROWID;""")
-    history = pd.Series(users["history_len"].fillna(0).astype(int).to_numpy(), index=users["user_id"].astype(str))
-    con.executemany("INSERT INTO users VALUES (?, ?)", zip(history.index, history.tolist()))
-    rows = zip(fp["user_id"].astype(str), fp["level"].astype(int).tolist(), fp["topic_id"].astype(str),
-               fp["interactions"].astype(int).tolist(),
-               fp.get("engaged_interactions", fp["interactions"]).astype(int).tolist(),
-               fp["known"].astype(bool).astype(int).tolist(),
-               _us_list(fp.get("first_ts", fp["last_ts"])), _us_list(fp["last_ts"]),
-               _us_list(fp.get("known_since", pd.Series([None] * len(fp), dtype="datetime64[us, UTC]"))),
-               _recent_text(fp["recent_us"]),
-               fp["user_id"].astype(str).map(history).fillna(0).astype(int).tolist())
-    con.executemany("INSERT INTO topics VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)", rows)
+    con.executescript(_SCHEMA)
+    if not merge:
+        con.executemany("INSERT INTO users VALUES (?, ?)", zip(*(people.column(c).to_pylist() for c in people.column_names)))
+        con.executemany(f"INSERT INTO topics VALUES ({', '.join('?' * len(TOPIC_COLUMNS))})",
+                        zip(*(topics.column(c).to_pylist() for c in TOPIC_COLUMNS)))
+    else:
+        new = len(merge)
+        con.executescript("""CREATE TEMP TABLE new_users AS SELECT * FROM main.users WHERE 0;
+            CREATE TEMP TABLE new_topics AS SELECT * FROM main.topics WHERE 0;
+            CREATE TEMP TABLE owner (user_id TEXT PRIMARY KEY, src INTEGER NOT NULL) WITHOUT ROWID;""")
+        con.executemany("INSERT INTO new_users VALUES (?, ?)", zip(*(people.column(c).to_pylist() for c in people.column_names)))
+        con.executemany(f"INSERT INTO new_topics VALUES ({', '.join('?' * len(TOPIC_COLUMNS))})",
+                        zip(*(topics.column(c).to_pylist() for c in TOPIC_COLUMNS)))
+        con.execute(f"INSERT INTO owner SELECT user_id, {new} FROM new_users")
+        for i, src in enumerate(merge):
+            con.execute(f"ATTACH DATABASE ? AS s{i}", (f"file:{src}?mode=ro&immutable=1",))
+        for i in reversed(range(new)):  # newest first: a user belongs to the newest source holding them
+            con.execute(f"INSERT OR IGNORE INTO owner SELECT user_id, {i} FROM s{i}.users")
+        pick = " UNION ALL ".join(f"SELECT t.* FROM s{i}.{{0}} t JOIN owner o ON o.user_id = t.user_id AND o.src = {i}"
+                                  for i in range(new))
+        con.execute(f"INSERT INTO main.users SELECT * FROM (SELECT * FROM new_users UNION ALL "
+                    f"{pick.format('users')}) ORDER BY user_id")
+        con.execute(f"INSERT INTO main.topics SELECT * FROM (SELECT * FROM new_topics UNION ALL "
+                    f"{pick.format('topics')}) ORDER BY user_id, level, topic_id")
     con.commit()
     con.close()
 
 
-def _write_items(path: Path, taxonomy) -> None:
+def _items(path: Path, taxonomy, previous: dict | None, root: Path) -> str:
+    """items.sqlite for the snapshot: linked from the previous one when the item topics are the same."""
     it = rank_item_topics(taxonomy.item_topics)
+    t = taxonomy.topics
+    rows = pd.util.hash_pandas_object(it[["item_id", "level", "valid_from_us", "pos", "topic_id"]].astype(str),
+                                      index=False).to_numpy(np.uint64)
+    trows = pd.util.hash_pandas_object(t[["topic_id", "level", "parent_id", "name"]].astype(str),
+                                       index=False).to_numpy(np.uint64)
+    digest = hashlib.sha256(repr((int(rows.sum(dtype=np.uint64)), len(rows), int(trows.sum(dtype=np.uint64)),
+                                  len(trows))).encode()).hexdigest()
+    if previous is not None and previous.get("items_digest") == digest:
+        os.link(root / "snapshots" / previous["name"] / "items.sqlite", path)
+    else:
+        _write_items(path, it, t)
+    return digest
+
+
+def _write_items(path: Path, it: pd.DataFrame, t: pd.DataFrame) -> None:
     con = sqlite3.connect(path)
     con.executescript("""
         PRAGMA journal_mode = OFF; PRAGMA synchronous = OFF;
@@ -321,7 +388,6 @@ def _write_items(path: Path, taxonomy) -> None:
                     zip(it["item_id"].astype(str), it["level"].astype(int).tolist(),
                         it["valid_from_us"].astype(int).tolist(), it["pos"].astype(int).tolist(),
                         [None if pd.isna(t) else str(t) for t in it["topic_id"]]))
-    t = taxonomy.topics
     con.executemany("INSERT INTO topics VALUES (?, ?, ?, ?)",
                     zip(t["topic_id"].astype(str), t["level"].astype(int).tolist(),
                         [None if p is None or (isinstance(p, float) and np.isnan(p)) else str(p)
