@@ -76,7 +76,9 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
         fp = fp[~fp["user_id"].map(user_digest).isin(gone)]
     users = fp.groupby("user_id", sort=True)["history_len"].max().rename("history_len").reset_index()
     if history is not None:
-        extra = history[~history["user_id"].isin(users["user_id"])]
+        have = pa.array(users["user_id"].astype(str), pa.string())
+        ids = pa.array(history["user_id"].astype(str), pa.string())
+        extra = history[~pc.is_in(ids, value_set=have).to_numpy(zero_copy_only=False)]
         if gone:
             extra = extra[~extra["user_id"].map(user_digest).isin(gone)]
         users = pd.concat([users, extra[["user_id", "history_len"]]], ignore_index=True)
