@@ -22,9 +22,17 @@ ENV_PREFIX = "LABELER__"
 class _Strict(BaseModel):
     model_config = ConfigDict(extra="forbid", validate_default=True, frozen=True)
 
+    #: fields that say where things are, not what results mean: left out of version hashes
+    _LOCATIONS: frozenset[str] = frozenset()
+
     def canonical_json(self) -> str:
-        """Key-sorted JSON of every field: the input of version hashes."""
+        """Key-sorted JSON of every field."""
         return json.dumps(self.model_dump(mode="json"), sort_keys=True, separators=(",", ":"))
+
+    def meaning_json(self) -> str:
+        """Key-sorted JSON of the fields that change results (no paths): the input of version hashes."""
+        return json.dumps(self.model_dump(mode="json", exclude=set(self._LOCATIONS)), sort_keys=True,
+                          separators=(",", ":"))
 
 
 class InputConfig(_Strict):
@@ -49,6 +57,8 @@ class InputConfig(_Strict):
 
 
 class TaxonomyConfig(_Strict):
+    _LOCATIONS = frozenset({"embedding_cache", "model_path"})
+
     """How a taxonomy is learned from item text."""
 
     text_columns: tuple[str, ...] = ("title", "description", "tags")

@@ -106,6 +106,21 @@ def test_same_inputs_same_version_and_files(built, tmp_path):
         assert f.read_bytes() == (tmp_path / "b" / f.name).read_bytes(), f.name
 
 
+def test_version_does_not_depend_on_the_embedding_cache_path(tmp_path):
+    """The same build with two cache folders, saved in two folders, has one version and the same bytes."""
+    from labeler.embed import HashingEmbedder
+    items = catalog()
+    a = build_taxonomy(items, CFG.model_copy(update={"embedding_cache": str(tmp_path / "cache-a")}),
+                       embedder=HashingEmbedder(128), progress=False)
+    b = build_taxonomy(items, CFG.model_copy(update={"embedding_cache": str(tmp_path / "elsewhere" / "cache-b")}),
+                       embedder=HashingEmbedder(128), progress=False)
+    assert a.version == b.version
+    a.save(tmp_path / "one")
+    b.save(tmp_path / "two")
+    for f in sorted((tmp_path / "one").iterdir()):
+        assert f.read_bytes() == (tmp_path / "two" / f.name).read_bytes(), f.name
+
+
 def test_artifact_has_no_pickles(built, tmp_path):
     """The folder holds Parquet, .npy (loadable with allow_pickle=False) and JSON only."""
     _, tax = built

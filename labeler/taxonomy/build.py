@@ -13,6 +13,7 @@ items) makes ``Taxonomy.assign`` on the build items reproduce the build exactly.
 """
 from __future__ import annotations
 
+import json
 import logging
 
 import numpy as np
@@ -209,7 +210,7 @@ def _stable_ids(fine_members: dict, coarse_members: dict, previous, cfg: Taxonom
 
 def _input_version(items: pd.DataFrame, cfg: TaxonomyConfig, model: str, previous) -> str:
     texts = item_text(items, cfg.text_columns)
-    return hash_strings([FORMAT, "learned", __version__, model, cfg.canonical_json(),
+    return hash_strings([FORMAT, "learned", __version__, model, cfg.meaning_json(),
                          previous.version if previous is not None else "",
                          *sorted(f"{i}\x01{t}" for i, t in zip(items["item_id"], texts))])
 
@@ -275,7 +276,7 @@ def build_taxonomy(items: pd.DataFrame, config: TaxonomyConfig | None = None, *,
                                                "size", "first_version"])
     n_unplaced = int(len(items) - rows["item_id"].nunique())
     manifest = {"format": FORMAT, "kind": "learned", "version": version, "tool_version": __version__,
-                "model": embedder.name, "config": cfgd, "n_items": int(len(items)),
+                "model": embedder.name, "config": json.loads(cfg.meaning_json()), "n_items": int(len(items)),
                 "n_fit_sample": int(len(fit_idx)), "n_unplaced": n_unplaced,
                 "n_empty_text": int(empty.sum()), "n_noise_in_fit": n_noise,
                 "topics_per_level": {str(l): int((topics["level"] == l).sum()) for l in (0, 1)},
