@@ -198,6 +198,9 @@ def test_nothing_new_is_a_no_op(tmp_path, scenario):
     again = run_job(cfg)
     assert again.manifest["status"] == "up to date" and again.exit_code == 0
     assert committed(root / "work") == before
+    third = run_job(cfg)  # every run keeps its own record
+    records = sorted(p.parent.name for p in (root / "work" / "runs").glob("*/manifest.json"))
+    assert records == ["run-000001", "run-000002", "run-000003"] and third.manifest["run"] == "run-000003"
 
 
 def test_changed_partition_in_lookback_relabels_its_users_from_the_change(tmp_path, scenario):
@@ -353,6 +356,17 @@ def test_bad_partition_is_skipped_by_path_and_retried(tmp_path, scenario):
     assert res.exit_code == 0 and res.manifest["partitions"][dates[7]] == "new"
     run_job(make_config(root, work="full"))
     assert_same_outputs(root / "work", root / "full")
+
+
+def test_a_run_that_only_rejected_a_partition_says_so(tmp_path, scenario):
+    """A run whose one new partition is rejected commits nothing, exits 1 and is not 'up to date'."""
+    root, dates = setup_root(tmp_path, scenario, 10)
+    cfg = make_config(root)
+    run_job(cfg)
+    write_days(scenario[1], root / "interactions", [dates[10]])
+    _corrupt(root / "interactions" / f"date={dates[10]}" / "part-0.parquet")
+    res = run_job(cfg)
+    assert res.exit_code == 1 and res.manifest["status"] == "nothing committed: 1 partition(s) rejected"
 
 
 def test_bad_partition_stops_the_run_when_configured(tmp_path, scenario):

@@ -104,8 +104,8 @@ class _Run:
     def go(self) -> JobResult:
         cfg, work = self.cfg, self.work
         state = load_state(work)
-        seq = (state["run"] + 1) if state else 1
-        run_id = f"run-{seq:06d}"
+        seq = (state["run"] + 1) if state else 1  # committed runs: numbers the output generations
+        run_id = f"run-{_next_run_number(work, state):06d}"  # every run, committed or not, has its own record
         mode, why = self._mode(state)
         if mode == "full" and state is not None:
             log.info("full recompute: %s", why)
@@ -144,7 +144,8 @@ class _Run:
                     "items": {k: v for k, v in changes.items() if k != "first_seen"},
                     "lock_taken_over": self.lock.took_over, "taxonomy_refresh": self.refresh}
         if not staged_new and not removed and not reg_changed:
-            manifest.update(status="up to date", watermark=state and state.get("watermark"),
+            manifest.update(status=f"nothing committed: {len(rejected)} partition(s) rejected" if rejected
+                            else "up to date", watermark=state and state.get("watermark"),
                             generation=state and state.get("generation"))
             return self._finish(run_id, manifest, state, rejected, commit=False)
 
@@ -504,6 +505,14 @@ class _Run:
         for f in reg.glob("register-*.parquet"):
             if f"items/{f.name}" != state["register"]:
                 f.unlink(missing_ok=True)
+
+
+def _next_run_number(work: Path, state: dict | None) -> int:
+    """One more than every run that left a record (a run that crashed before its record reuses its number)."""
+    runs = work / "runs"
+    done = [int(p.name[4:]) for p in runs.glob("run-*") if p.name[4:].isdigit() and (p / "manifest.json").exists()] \
+        if runs.is_dir() else []
+    return max(done + [state["run"] if state else 0]) + 1
 
 
 def _store_manifest(work: Path, snapshot: str) -> dict:
