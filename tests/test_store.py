@@ -228,6 +228,22 @@ def test_forget_erases_users_for_good(tmp_path, cli, fixtures):
     assert "ana" not in (tmp_path / "store" / "tombstones.json").read_text()  # ids are stored hashed
 
 
+def test_forget_reports_ids_it_did_not_find(tmp_path, cli, fixtures):
+    """A mistyped id is reported, exit 1; with no id found nothing is published; found ids are erased."""
+    cli("taxonomy", "build", "--items", fixtures / "items.csv", "--out", tmp_path / "tax", "--from-categories",
+        "category", "-q")
+    cli("label", "--taxonomy", tmp_path / "tax", "--interactions", fixtures / "interactions.csv", "--out",
+        tmp_path / "out", "--store", tmp_path / "store", "-q")
+    before = (tmp_path / "store" / "CURRENT").read_text()
+    code, out, _ = cli("forget", "--store", tmp_path / "store", "anna")
+    assert code == 1 and "not found in the store or the outputs: anna" in out and "nothing was published" in out
+    assert (tmp_path / "store" / "CURRENT").read_text() == before
+    code, out, _ = cli("forget", "--store", tmp_path / "store", "ana", "bne")
+    assert code == 1 and "erased 1 user(s): ana" in out and "not found in the store or the outputs: bne" in out
+    assert (tmp_path / "store" / "CURRENT").read_text() != before
+    assert open_store(tmp_path / "store").footprint("ana").topics == ()
+
+
 def test_lookup_cli_table_and_json(tmp_path, cli, fixtures):
     """`labeler lookup` prints a readable table, and JSON with --json."""
     cli("taxonomy", "build", "--items", fixtures / "items.csv", "--out", tmp_path / "tax",
@@ -240,6 +256,8 @@ def test_lookup_cli_table_and_json(tmp_path, cli, fixtures):
     code, out, _ = cli("lookup", "--store", tmp_path / "store", "ana", "--item", "s1", "--json")
     doc = json.loads(out)
     assert doc["items"][0]["label"] == "new_interest" and doc["history_len"] == 5
+    code, out, _ = cli("lookup", "--store", tmp_path / "store", "nobody-here", "--item", "s1")
+    assert code == 0 and "is not in snapshot" in out and "cold_start" in out
 
 
 # -- consistency with batch labels -------------------------------------------------------------

@@ -49,12 +49,16 @@ def run_lookup(args) -> int:
             doc["items"] = [dataclasses.asdict(c) for c in result]
         print(json.dumps(doc, indent=2))
         return 0
-    print(f"user {fp.user_id}: {len(fp.known)} known topic(s), {fp.history_len} interactions up to "
-          f"{fp.watermark} (snapshot {fp.snapshot})")
+    if fp.history_len == 0 and not fp.topics:
+        print(f"user {fp.user_id} is not in snapshot {fp.snapshot} (interactions up to {fp.watermark}): no "
+              "footprint; items are labelled as for a user never seen")
+    else:
+        print(f"user {fp.user_id}: {len(fp.known)} known topic(s), {fp.history_len} interactions up to "
+              f"{fp.watermark} (snapshot {fp.snapshot})")
     if fp.topics:
-        print(f"  {'level':>5}  {'topic':<10} {'known':<6} {'views':>6} {'engaged':>8}  {'known since':<26} name")
+        print(f"  {'level':>5}  {'topic':<10} {'known':<6} {'interactions':>12} {'engaged':>8}  {'known since':<26} name")
         for t in fp.topics:
-            print(f"  {t.level:>5}  {t.topic_id:<10} {'yes' if t.known else 'no':<6} {t.interactions:>6} "
+            print(f"  {t.level:>5}  {t.topic_id:<10} {'yes' if t.known else 'no':<6} {t.interactions:>12} "
                   f"{t.engaged_interactions:>8}  {str(t.known_since or '-'):<26} {t.name}")
     if result is not None:
         print(f"  {'item':<12} {'level':>5}  {'label':<13} topic")
@@ -64,7 +68,15 @@ def run_lookup(args) -> int:
 
 
 def run_forget(args) -> int:
-    name = forget_users(args.store, args.users, outputs=args.outputs)
-    print(f"forgot {len(args.users)} user(s): published {name}, removed older snapshots, tombstoned the ids"
-          + (f", rewrote {len(args.outputs)} output folder(s)" if args.outputs else ""))
+    """Exit 0 when every id was found and erased; 1 when any was found nowhere (nothing is
+    published when none was found)."""
+    done = forget_users(args.store, args.users, outputs=args.outputs)
+    if done.erased:
+        print(f"erased {len(done.erased)} user(s): {', '.join(done.erased)}; published {done.snapshot}, removed "
+              "older snapshots" + (f", rewrote {len(args.outputs)} output folder(s)" if args.outputs else ""))
+    if done.not_found:
+        print(f"not found in the store or the outputs: {', '.join(done.not_found)} (check the ids; they are "
+              "tombstoned all the same, so data arriving later for them is never published)"
+              + ("" if done.erased else "; nothing was published"))
+        return 1
     return 0

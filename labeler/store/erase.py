@@ -1,6 +1,7 @@
 """Erasure: users removed from the store, its retained snapshots and label outputs, tombstoned."""
 from __future__ import annotations
 
+import dataclasses
 import json
 import logging
 import os
@@ -17,31 +18,54 @@ from .reader import Store
 log = logging.getLogger(__name__)
 
 
-def forget_users(path, user_ids: Iterable[str], outputs: Iterable = ()) -> str:
+@dataclasses.dataclass(frozen=True)
+class Erasure:
+    """What ``forget_users`` did: the ids it found and erased, those it found nowhere, and the
+    snapshot it published (None when no id was found, and nothing was published)."""
+
+    erased: tuple[str, ...]
+    not_found: tuple[str, ...]
+    snapshot: str | None
+
+
+def forget_users(path, user_ids: Iterable[str], outputs: Iterable = ()) -> Erasure:
     """Erase users: tombstone them, publish a snapshot without them, drop every older snapshot, and
     rewrite the Parquet files under each folder in ``outputs`` (e.g. `labeler label --out` folders)
-    without their rows. Returns the new snapshot's name. Later publishes skip tombstoned users.
+    without their rows. Later publishes skip tombstoned users.
+
+    An id found neither in the store's current snapshot nor in ``outputs`` is reported in
+    ``not_found`` (a typo, or a user whose data has not arrived yet); it is tombstoned all the same,
+    so data arriving later is never published. When no id is found, nothing is published.
     """
     import pyarrow.compute as pc
     import pyarrow.parquet as pq
-    user_ids = [str(u) for u in user_ids]
+    user_ids = list(dict.fromkeys(str(u) for u in user_ids))
+    root = Path(path)
+    store = Store(root)
+    found = {u for u in user_ids if store._user(u) != (0, [])}
     for folder in outputs:
         for f in sorted(Path(folder).rglob("*.parquet")):
             table = pq.read_table(f)
             if "user_id" not in table.column_names:
                 continue
-            keep = table.filter(pc.invert(pc.is_in(table.column("user_id"), value_set=_strings(user_ids))))
+            hit = pc.is_in(table.column("user_id"), value_set=_strings(user_ids))
+            found |= set(pc.unique(table.column("user_id").filter(hit)).to_pylist())
+            keep = table.filter(pc.invert(hit))
             if keep.num_rows != table.num_rows:
                 tmp = f.with_name(f".{f.name}.{uuid.uuid4().hex}")
                 pq.write_table(keep, tmp)
                 os.replace(tmp, f)
-    root = Path(path)
-    store = Store(root)
     digests = {user_digest(str(u)) for u in user_ids}
     tomb = tombstones(root) | digests
     tmp = root / f".tombstones.{uuid.uuid4().hex}"
     tmp.write_text(json.dumps(sorted(tomb)))
     os.replace(tmp, root / "tombstones.json")
+    erased = tuple(u for u in user_ids if u in found)
+    missing = tuple(u for u in user_ids if u not in found)
+    if missing:
+        log.warning("not found in the store or the outputs (tombstoned all the same): %s", ", ".join(missing))
+    if not erased:
+        return Erasure((), missing, None)
     frames, users = [], []
     for shard in store.manifest["shards"]:
         f, u = merge_layers([read_shard(store._folder / f) for f in shard_files(store.manifest, shard)])
@@ -53,8 +77,8 @@ def forget_users(path, user_ids: Iterable[str], outputs: Iterable = ()) -> str:
     tax = _StoredTaxonomy(store)
     name = publish_store(root, fp, tax, store.config, history=hist, as_of=store.watermark,
                          shards=store.manifest["n_shards"], retain=1)
-    log.info("forgot %d user(s); published %s and removed older snapshots", len(digests), name)
-    return name
+    log.info("erased %d user(s); published %s and removed older snapshots", len(erased), name)
+    return Erasure(erased, missing, name)
 
 
 def _strings(values):
