@@ -10,13 +10,14 @@ from .config import EngineConfig, GateConfig, InputConfig, JobConfig, LabelConfi
     load_job_config
 from .errors import ArtifactError, ConfigError, InputError, LabelerError, ModelNotFoundError
 from .job import run_job
-from .labelling import build_footprints, label_interactions, plan_labels
+from .labelling import Carried, build_footprints, label_interactions, plan_labels
+from .metrics import Evaluation, evaluate
 from .rollout import RolloutResult, check_rollout
-from .store import Classification, Footprint, Store, TopicState, forget_users, open_store, publish_store
+from .store import Classification, Erasure, Footprint, Store, TopicState, forget_users, open_store, publish_store
 from .taxonomy import Taxonomy, build_taxonomy
 
 __all__ = ["ArtifactError", "ConfigError", "EngineConfig", "GateConfig", "InputConfig", "InputError",
            "JobConfig", "LabelConfig", "LabelerError", "ModelNotFoundError", "Taxonomy", "TaxonomyConfig",
            "build_footprints", "build_taxonomy", "label_interactions", "load_job_config", "plan_labels",
            "Classification", "Footprint", "Store", "TopicState", "forget_users", "open_store", "publish_store",
-           "RolloutResult", "check_rollout", "run_job"]
+           "RolloutResult", "check_rollout", "run_job", "Carried", "Erasure", "Evaluation", "evaluate"]

@@ -12,10 +12,10 @@ A publish writes a new snapshot folder (shards whose content did not change are 
 previous snapshot's files), fsyncs it, then renames a new ``CURRENT`` into place: a reader sees one
 complete snapshot or the previous one, never a mix. Old snapshots beyond ``retain`` are removed.
 """
-from .erase import forget_users
+from .erase import Erasure, forget_users
 from .layout import shard_of
 from .publish import publish_store
 from .reader import Classification, Footprint, Store, TopicState, open_store
 
-__all__ = ["Classification", "Footprint", "Store", "TopicState", "forget_users", "open_store", "publish_store",
+__all__ = ["Classification", "Erasure", "Footprint", "Store", "TopicState", "forget_users", "open_store", "publish_store",
            "shard_of"]
