@@ -34,7 +34,7 @@ import numpy as np
 import pandas as pd
 
 from .config import InputConfig, LabelConfig
-from .errors import InputError
+from .errors import ConfigError, InputError
 from .tables import normalize_ids, normalize_interactions, normalize_timestamps, require_columns, Intake
 
 LIST_METRICS = ("precision", "recall", "map", "ndcg", "ild_topic", "ild_embedding", "novelty",
@@ -149,6 +149,16 @@ class Evaluation:
         return out
 
 
+def _check_settings(k, horizon_days, level, tax) -> None:
+    """The evaluation's settings, each refused with the option it came from."""
+    if isinstance(k, bool) or not isinstance(k, (int, np.integer)) or k < 1:
+        raise ConfigError(f"--k must be a whole number of at least 1 (the list cut-off); got {k!r}.")
+    if not isinstance(horizon_days, (int, float)) or not np.isfinite(horizon_days) or horizon_days <= 0:
+        raise ConfigError(f"--horizon-days must be a positive number of days; got {horizon_days!r}.")
+    if level is not None and level not in tax.levels:
+        raise ConfigError(f"--level {level} is not a level of taxonomy {tax.version[:12]} (it has {tax.levels}).")
+
+
 def _recs_frame(recs: pd.DataFrame, k: int, group_by: str | None) -> pd.DataFrame:
     source = "recs"
     require_columns(recs, ("user_id", "ts", "item_id", "rank"), source)
@@ -160,6 +170,11 @@ def _recs_frame(recs: pd.DataFrame, k: int, group_by: str | None) -> pd.DataFram
     if rank.isna().any():
         raise InputError("non-numeric rank(s).", source=source, column="rank",
                          sample=recs.loc[rank.isna(), ["user_id", "rank"]].head(5).astype(str).agg(", ".join, axis=1).tolist())
+    bad = ~np.isfinite(rank.to_numpy(dtype=float)) | (rank.to_numpy(dtype=float) <= 0)
+    if bad.any():
+        raise InputError(f"{int(bad.sum())} rank(s) that are not positive numbers.", source=source, column="rank",
+                         sample=recs.loc[bad, ["user_id", "ts", "rank"]].head(5).astype(str).agg(", ".join, axis=1).tolist(),
+                         hint="Ranks start at 1 (the top of the list).")
     out["rank"] = rank.to_numpy()
     if group_by is not None:
         if group_by not in recs.columns:
@@ -169,6 +184,12 @@ def _recs_frame(recs: pd.DataFrame, k: int, group_by: str | None) -> pd.DataFram
     else:
         out["group"] = "all"
     out["ts_us"] = out["ts"].astype("datetime64[us, UTC]").astype("int64")
+    dup = out.duplicated(["group", "user_id", "ts_us", "rank"], keep=False)
+    if dup.any():
+        raise InputError(f"{int(dup.sum())} rows share a rank with another item of the same list.", source=source,
+                         column="rank", sample=recs.loc[dup.to_numpy(), ["user_id", "ts", "item_id", "rank"]].head(5)
+                         .astype(str).agg(", ".join, axis=1).tolist(),
+                         hint="A list (user_id, ts) ranks each item once: give each item its own rank.")
     out = out.sort_values(["group", "user_id", "ts_us", "rank", "item_id"]).drop_duplicates(
         ["group", "user_id", "ts_us", "item_id"])
     out["pos"] = out.groupby(["group", "user_id", "ts_us"]).cumcount() + 1
@@ -210,8 +231,12 @@ def evaluate(recs: pd.DataFrame, interactions: pd.DataFrame, tax, k: int = 10, *
     """
     from .labelling import plan_labels
     cfg = label_config or LabelConfig()
+    _check_settings(k, horizon_days, level, tax)
     level = max(tax.levels) if level is None else level
     lists = _recs_frame(recs, k, group_by)
+    if control is not None and control not in set(lists["group"]):
+        raise ConfigError(f"--control {control!r} is not a group of the lists (grouped by {group_by or 'nothing'}); "
+                          f"groups: {', '.join(sorted(set(lists['group']))[:10])}. Name one of them.")
     ev, _ = normalize_interactions(interactions, InputConfig(), "interactions")
     ev = ev.assign(ts_us=ev["ts"].astype("datetime64[us, UTC]").astype("int64"))
     run = plan_labels(ev, tax, cfg)

@@ -190,6 +190,32 @@ def test_cli_evaluate(cli, tmp_path):
     assert "serendipity" in out and (tmp_path / "o" / "report.html").exists()
 
 
+@pytest.mark.parametrize("extra, recs_rank, names", [
+    (["--control", "b"], [1, 2], "--control 'b'"),
+    (["--k", "0"], [1, 2], "--k"),
+    (["--k", "-3"], [1, 2], "--k"),
+    (["--horizon-days", "nan"], [1, 2], "--horizon-days"),
+    (["--horizon-days", "-1"], [1, 2], "--horizon-days"),
+    (["--level", "7"], [1, 2], "--level 7"),
+    ([], [1, 1], "column 'rank'"),
+    ([], [0, 2], "column 'rank'"),
+    ([], [-1, 2], "column 'rank'"),
+])
+def test_cli_evaluate_refuses_bad_settings_and_ranks(cli, tmp_path, extra, recs_rank, names):
+    """Unknown control group, k < 1, a horizon that is NaN or negative, an unknown level, duplicate
+    ranks in one list and ranks <= 0 are each refused with exit 2, naming the option or column."""
+    tax = _tax({"a1": "A", "a2": "A", "b1": "B"})
+    tax.save(tmp_path / "tax")
+    pd.DataFrame({"user_id": ["u1", "u1"], "item_id": ["a1", "b1"],
+                  "ts": [T0 - pd.Timedelta(days=1), T0 + pd.Timedelta(hours=1)]}).to_csv(tmp_path / "log.csv", index=False)
+    pd.DataFrame({"user_id": "u1", "ts": T0, "item_id": ["a2", "b1"], "rank": recs_rank,
+                  "arm": "a"}).to_csv(tmp_path / "recs.csv", index=False)
+    code, out, err = cli("evaluate", "--recs", tmp_path / "recs.csv", "--interactions", tmp_path / "log.csv",
+                         "--taxonomy", tmp_path / "tax", "--group-by", "arm", "--out", tmp_path / "o", *extra)
+    assert code == 2, (out, err)
+    assert names in err and "Traceback" not in err
+
+
 def test_embedding_diversity_from_a_learned_taxonomy(hashing):
     """item_vectors embeds with the learned taxonomy's own model; ILD by embedding is then filled."""
     from labeler import TaxonomyConfig, build_taxonomy
