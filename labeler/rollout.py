@@ -105,6 +105,14 @@ def contingency(current, candidate, level: int):
     return c, size_a, size_b
 
 
+def same_name(a: str | None, b: str | None) -> bool:
+    """Names equal up to the order of their " / "-separated keywords and letter case: a topic whose
+    keywords were only reordered keeps its name."""
+    def words(x):
+        return None if x is None else sorted(w.strip().casefold() for w in str(x).split("/"))
+    return words(a) == words(b)
+
+
 def topic_map(current, candidate, level: int) -> pd.DataFrame:
     """One row per current topic (status kept/renamed/split/merged/retired and its targets) and per
     new candidate topic (status new), from item memberships (see the module docstring)."""
@@ -128,7 +136,7 @@ def topic_map(current, candidate, level: int) -> pd.DataFrame:
             status, to = "merged", [best["topic_id_cand"]]
         elif best is not None and best["r"] >= KEEP and best["s"] >= KEEP:
             to = [best["topic_id_cand"]]
-            status = "kept" if names_b.get(to[0]) == names_a.get(t) else "renamed"
+            status = "kept" if same_name(names_b.get(to[0]), names_a.get(t)) else "renamed"
         else:
             status, to = "retired", []
         continuing.update(to)

@@ -240,3 +240,15 @@ def test_silhouette_of_a_learned_candidate(hashing):
     res = check_rollout(tax, tax, log, items=items)
     sil = res.summary["candidate_quality"]["silhouette"]
     assert sil is not None and -1.0 <= sil <= 1.0
+
+
+def test_reordered_keywords_are_not_a_rename():
+    """A topic whose name only lists its keywords in another order (or case) is 'kept', not 'renamed';
+    another word is a rename."""
+    from labeler.rollout import topic_map
+    it = pd.DataFrame({"item_id": ["a", "b"], "level": 0, "topic_id": ["t1", "t2"], "confidence": 1.0})
+    def tax(n1, n2):
+        return Taxonomy.from_tables(pd.DataFrame({"topic_id": ["t1", "t2"], "level": 0, "name": [n1, n2]}), it)
+    m = topic_map(tax("sourdough / starter / bread", "yarn / wool"), tax("Starter / bread / sourdough", "yarn / felt"), 0)
+    status = m[m["side"] == "current"].set_index("topic_id")["status"].to_dict()
+    assert status == {"t1": "kept", "t2": "renamed"}
