@@ -127,6 +127,8 @@ class GateConfig(_Strict):
     max_unplaced_share: float = Field(0.10, ge=0, le=1)
     max_retired_share: float = Field(0.25, ge=0, le=1)
     min_topic_size: int = Field(5, ge=1)
+    levels: tuple[int, ...] | None = Field(None, description="Levels the gate judges (default: every level both "
+                                                             "taxonomies have).")
 
 
 class EngineConfig(_Strict):

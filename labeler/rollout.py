@@ -105,6 +105,22 @@ def contingency(current, candidate, level: int):
     return c, size_a, size_b
 
 
+def check_value(check: dict) -> str:
+    """A gate check's value for messages ("-" when there was nothing to judge)."""
+    return "-" if check["value"] is None else f"{check['value']:.4g}"
+
+
+def changed_topics(current, candidate, level: int) -> set[str]:
+    """Candidate topic ids at ``level`` whose item set is not exactly one of the current taxonomy's
+    topics (whatever its id): the topics a rollout adds or changes."""
+    def sets(tax):
+        it = tax.item_topics
+        it = it[(it["level"] == level) & it["topic_id"].notna()]
+        return it.groupby("topic_id")["item_id"].apply(lambda s: frozenset(s.astype(str)))
+    before = set(sets(current).tolist())
+    return {t for t, members in sets(candidate).items() if members not in before}
+
+
 def same_name(a: str | None, b: str | None) -> bool:
     """Names equal up to the order of their " / "-separated keywords and letter case: a topic whose
     keywords were only reordered keeps its name."""
@@ -276,24 +292,47 @@ def check_rollout(current, candidate, interactions, config: GateConfig | None = 
                             for (_, t), n in sizes.sort_values().head(5).items()],
                "largest": [{"topic_id": t, "name": names.get(t, t), "size": int(n)}
                            for (_, t), n in sizes.sort_values(ascending=False).head(5).items()]}
-    finest = str(max(levels))
-    checks = {
-        "flip_share": (impact["flip_share"], impact["flip_share"] <= gate.max_flip_share, f"<= {gate.max_flip_share}"),
-        "ami": (agree[finest]["ami"], agree[finest]["ami"] >= gate.min_ami, f">= {gate.min_ami}"),
-        "unplaced_share": (unplaced_share, unplaced_share <= gate.max_unplaced_share, f"<= {gate.max_unplaced_share}"),
-        "retired_share": (float((cur_topics["status"] == "retired").mean()) if len(cur_topics) else 0.0, None,
-                          f"<= {gate.max_retired_share}"),
-        "min_topic_size": (int(sizes.min()) if len(sizes) else 0, None, f">= {gate.min_topic_size}")}
-    checks["retired_share"] = (checks["retired_share"][0], checks["retired_share"][0] <= gate.max_retired_share,
-                               checks["retired_share"][2])
-    checks["min_topic_size"] = (checks["min_topic_size"][0], checks["min_topic_size"][0] >= gate.min_topic_size,
-                                checks["min_topic_size"][2])
+    judged = [lv for lv in levels if gate.levels is None or lv in gate.levels]
+    if not judged:
+        from .errors import ConfigError
+        raise ConfigError(f"gate.levels {list(gate.levels)} names no level both taxonomies have ({levels}).")
+    checks, warnings = {}, []
+    for lv in judged:
+        at = f" (level {lv})"
+        flip = impact["levels"].get(str(lv), {}).get("flip_share", 0.0)
+        cur_lv = cur_topics[cur_topics["level"] == lv]
+        retired = float((cur_lv["status"] == "retired").mean()) if len(cur_lv) else 0.0
+        changed = changed_topics(current, candidate, lv)
+        lv_sizes = sizes.loc[lv] if lv in sizes.index.get_level_values(0) else pd.Series(dtype=int)
+        judged_sizes = lv_sizes[lv_sizes.index.isin(changed)]
+        small_kept = lv_sizes[~lv_sizes.index.isin(changed) & (lv_sizes < gate.min_topic_size)]
+        if len(small_kept):
+            warnings.append(f"level {lv}: {len(small_kept)} topic(s) under min_topic_size that the candidate does not "
+                            f"change (already so in the current taxonomy): " + ", ".join(
+                                f"{names.get(t, t)} ({n})" for t, n in small_kept.sort_values().head(5).items()))
+        checks["flip_share" + at] = (flip, flip <= gate.max_flip_share, f"<= {gate.max_flip_share}")
+        checks["ami" + at] = (agree[str(lv)]["ami"], agree[str(lv)]["ami"] >= gate.min_ami, f">= {gate.min_ami}")
+        checks["retired_share" + at] = (retired, retired <= gate.max_retired_share, f"<= {gate.max_retired_share}")
+        smallest = int(judged_sizes.min()) if len(judged_sizes) else None
+        checks["min_topic_size" + at] = (smallest, smallest is None or smallest >= gate.min_topic_size,
+                                         f">= {gate.min_topic_size} (topics the candidate adds or changes: "
+                                         f"{len(judged_sizes)})")
+    cur_unplaced = float(current.manifest.get("n_unplaced", 0)) / n_items if n_items else 0.0
+    ok = unplaced_share <= gate.max_unplaced_share or unplaced_share <= cur_unplaced
+    if unplaced_share > gate.max_unplaced_share and ok:
+        warnings.append(f"unplaced share {unplaced_share:.3g} is over {gate.max_unplaced_share}, but no worse than the "
+                        f"current taxonomy's ({cur_unplaced:.3g})")
+    checks["unplaced_share"] = (unplaced_share, ok, f"<= {gate.max_unplaced_share} or no worse than current")
+    only = sorted(set(current.levels) ^ set(candidate.levels))
+    note = (f"levels compared: {levels} (current has {current.levels}, candidate {candidate.levels}: "
+            f"level(s) {only} exist on one side only and cannot be compared)") if only else f"levels compared: {levels}"
     gate_out = {k: {"value": v, "passed": bool(ok), "threshold": th} for k, (v, ok, th) in checks.items()}
     summary = {"current": current.version, "candidate": candidate.version, "levels": levels,
                "agreement": agree, "topic_map_counts": {
                    str(lv): tmap[tmap["level"] == lv]["status"].value_counts().to_dict() for lv in levels},
                "labels": impact, "candidate_quality": quality,
                "gate": {"passed": all(c["passed"] for c in gate_out.values()), "checks": gate_out,
+                        "levels_judged": judged, "levels_note": note, "warnings": warnings,
                         "config": json.loads(gate.canonical_json())}}
     cont = pd.concat([contingency(current, candidate, lv)[0].assign(level=lv) for lv in levels], ignore_index=True)
     return RolloutResult(summary, tmap, flips, cont, current.names(), candidate.names(),

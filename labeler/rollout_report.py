@@ -159,8 +159,10 @@ def render(result) -> str:
     verdict = (f"<p class='{'pass' if gate['passed'] else 'fail'}'>Gate: "
                f"{'PASS' if gate['passed'] else 'FAIL'}</p>")
     intro = (f"<p>Current taxonomy <code>{esc(s['current'][:16])}</code>, candidate "
-             f"<code>{esc(s['candidate'][:16])}</code>; levels compared: {esc(s['levels'])}.</p>{verdict}")
-    sections = [("Gate", table(checks))]
+             f"<code>{esc(s['candidate'][:16])}</code>; {esc(gate['levels_note'])}; the gate judged "
+             f"level(s) {esc(gate['levels_judged'])}.</p>{verdict}")
+    notes = "".join(f"<li>{esc(w)}</li>" for w in gate["warnings"])
+    sections = [("Gate", table(checks) + (f"<p>Noted, not judged:</p><ul>{notes}</ul>" if notes else ""))]
     agree = pd.DataFrame([{"level": lv, **v} for lv, v in s["agreement"].items()])
     sections.append(("Assignment agreement", table(agree) + image(pngs["agreement"], "agreement per level")))
     for level in s["levels"]:

@@ -72,6 +72,39 @@ def test_identity_and_renamed_ids_change_nothing(movielens):
     assert res.summary["labels"]["flip_share"] == 0.0 and res.passed
 
 
+@pytest.mark.external
+def test_a_taxonomy_against_itself_passes_the_default_gate(movielens):
+    """MovieLens 100K (GroupLens) genres against themselves pass the default gate: the 'unknown'
+    genre's 2 movies are under min_topic_size, but the candidate does not change that topic, so it
+    is noted as a warning and not judged."""
+    ratings, movies = movielens
+    tax = Taxonomy.from_categories(movies, column="genres")
+    res = check_rollout(tax, tax, ratings, GateConfig())
+    assert res.passed, res.summary["gate"]
+    assert any("unknown (2)" in w for w in res.summary["gate"]["warnings"])
+    assert res.summary["gate"]["levels_judged"] == [0]
+
+
+def test_the_gate_judges_every_level():
+    """A candidate with the same fine topics but coarse topics regrouped at random fails on the
+    coarse level's checks (each check names its level), and passes when the gate judges level 1 only."""
+    from labelcases import T0, taxonomy
+    fine = {f"i{k:02d}": [(f"f{k % 6}", 1.0)] for k in range(36)}
+    current = taxonomy(fine, parents={f"f{j}": f"c{j // 2}" for j in range(6)}, level=1)
+    candidate = taxonomy(fine, parents={f"f{j}": f"c{(j * 5) % 3}" for j in range(6)}, level=1)
+    log = pd.DataFrame({"user_id": [f"u{k % 5}" for k in range(200)], "item_id": [f"i{(k * 7) % 36:02d}" for k in range(200)],
+                        "ts": [T0 + pd.Timedelta(minutes=k) for k in range(200)]})
+    gate = GateConfig(min_topic_size=1)
+    res = check_rollout(current, candidate, log, gate)
+    checks = res.summary["gate"]["checks"]
+    assert {k for k in checks if k.endswith("(level 0)")} == {"flip_share (level 0)", "ami (level 0)",
+                                                              "retired_share (level 0)", "min_topic_size (level 0)"}
+    assert checks["ami (level 1)"]["passed"] and checks["ami (level 1)"]["value"] == pytest.approx(1.0)
+    assert not checks["ami (level 0)"]["passed"] and not res.passed
+    only_fine = check_rollout(current, candidate, log, gate.model_copy(update={"levels": (1,)}))
+    assert only_fine.passed and only_fine.summary["gate"]["levels_judged"] == [1]
+
+
 def test_movielens_merge_and_split_are_reported_exactly(movielens, tmp_path):
     ratings, movies = movielens
     current = Taxonomy.from_categories(movies, column="genres")
@@ -118,7 +151,7 @@ def test_gate_fails_on_a_very_different_candidate(movielens):
     res = check_rollout(current, shuffled, ratings, GateConfig(max_flip_share=0.01, min_ami=0.5))
     assert not res.passed
     checks = res.summary["gate"]["checks"]
-    assert not checks["ami"]["passed"] and checks["ami"]["value"] < 0.1
+    assert not checks["ami (level 0)"]["passed"] and checks["ami (level 0)"]["value"] < 0.1
 
 
 def test_cli_rollout_check_exit_codes(cli, fixtures, tmp_path):

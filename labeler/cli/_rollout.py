@@ -3,7 +3,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from ..rollout import check_rollout
+from ..rollout import check_rollout, check_value
 from ..tables import read_table
 from ..taxonomy import Taxonomy
 from ._options import add_common, add_input, job_config
@@ -38,8 +38,11 @@ def run(args) -> int:
     s = res.summary
     print(f"rollout check {s['current'][:12]} -> {s['candidate'][:12]}: "
           f"{'PASS' if res.passed else 'FAIL'}")
+    print(f"  {s['gate']['levels_note']}; judged: level(s) {s['gate']['levels_judged']}")
     for name, c in s["gate"]["checks"].items():
-        print(f"  {'ok  ' if c['passed'] else 'FAIL'} {name:<15} {c['value']:.4g} (needs {c['threshold']})")
+        print(f"  {'ok  ' if c['passed'] else 'FAIL'} {name:<27} {check_value(c)} (needs {c['threshold']})")
+    for w in s["gate"]["warnings"]:
+        print(f"  note: {w}")
     for level, counts in s["topic_map_counts"].items():
         print(f"  level {level} topics: " + ", ".join(f"{k} {v}" for k, v in sorted(counts.items())))
     print(f"  outputs: {out}/report.html, summary.json, topic_map.csv, label_flips.csv")

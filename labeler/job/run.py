@@ -278,7 +278,7 @@ class _Run:
         """Build a candidate taxonomy (stable ids from the current one), check it against the
         current one on the staged interactions, and return (candidate, register) if the gate
         passes; otherwise keep the current taxonomy and record why."""
-        from ..rollout import check_rollout
+        from ..rollout import check_rollout, check_value
         cfg = self.cfg
         items, hashes, category = self._items_now
         if category is not None:
@@ -302,7 +302,7 @@ class _Run:
         self.refresh.update(checked=True, passed=result.passed, report=str(out), failed_checks=failed)
         if not result.passed:
             self.refresh.update(switched=False, reason="rollout gate failed: " + ", ".join(
-                f"{k}={result.summary['gate']['checks'][k]['value']:.4g} "
+                f"{k}={check_value(result.summary['gate']['checks'][k])} "
                 f"(needs {result.summary['gate']['checks'][k]['threshold']})" for k in failed))
             log.warning("taxonomy refresh: candidate %s kept out, %s", candidate.version[:12], self.refresh["reason"])
             return None
