@@ -97,7 +97,7 @@ class LabelConfig(_Strict):
     engaged_min: float = 1.0
     warmup: int = Field(1, ge=0)
     multi_topic: Literal["all_new", "any_new"] = "all_new"
-    multiplier: float = Field(2.0, ge=1.0)
+    multiplier: float = Field(2.0, ge=1.0, le=1e6)
     boost_on: Literal["new_interest", "discovery"] = "new_interest"
     levels: tuple[int, ...] | None = None
     event_types: tuple[str, ...] | None = None

@@ -114,7 +114,14 @@ def _lazy_parquet(engine, path: Path, cfg: InputConfig, source: str):
         raise InputError(f"could not be read as Parquet ({type(exc).__name__}: {exc}).", source=source,
                          hint="Check the file is a complete Parquet file.") from None
     names = schema.names
+    from .tables import _duplicate_columns
+    _duplicate_columns(names, source)
     require_columns(pd.DataFrame(columns=names), INTERACTIONS_REQUIRED, source)
+    for c in ("user_id", "item_id", "event_id", "event_type", "arm"):
+        if c in names and not (pa.types.is_string(schema.field(c).type) or pa.types.is_large_string(schema.field(c).type)
+                               or pa.types.is_integer(schema.field(c).type)):
+            raise InputError(f"holds {schema.field(c).type} values; ids and labels must be text or integers.",
+                             source=source, column=c, hint="Flatten or convert the column upstream.")
     ts_type = schema.field("ts").type
     eng_ok = "engagement" not in names or pa.types.is_floating(schema.field("engagement").type) \
         or pa.types.is_integer(schema.field("engagement").type)
@@ -139,8 +146,8 @@ def _lazy_parquet(engine, path: Path, cfg: InputConfig, source: str):
     rules = {"user_id": (blank(t.user_id), "null or empty id(s)"),
              "item_id": (blank(t.item_id), "null or empty id(s)"),
              "ts": (t.ts.isnull(), "null timestamp(s)"),
-             "engagement": (t.engagement.isnull() | t.engagement.isnan() | t.engagement.isinf(),
-                            "null, NaN or infinite engagement value(s)")}
+             "engagement": (t.engagement.isnull() | t.engagement.isnan() | t.engagement.isinf()
+                            | (t.engagement.abs() > 1e300), "null, NaN, infinite or beyond +-1e300 engagement value(s)")}
     proven = _clean_by_statistics(files, [c for c in rules if c in names])
     to_scan = {c: r for c, r in rules.items() if c in names and c not in proven}
     if to_scan:

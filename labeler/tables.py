@@ -35,6 +35,7 @@ LABELS_COLUMNS = ("user_id", "item_id", "ts", "event_id", "level", "topic_id", "
 FOOTPRINTS_COLUMNS = ("user_id", "level", "topic_id", "first_ts", "last_ts", "interactions",
                       "engaged_interactions", "known", "known_since")
 LABEL_VALUES = ("unplaced", "cold_start", "in_profile", "new_interest")
+_ENGAGEMENT_MAX = 1e300  # times any multiplier a config allows, still finite
 
 
 @dataclasses.dataclass
@@ -65,10 +66,13 @@ def read_table(path: str | Path) -> pd.DataFrame:
         raise InputError("file not found.", source=str(p), hint="Check the path and try again.")
     try:
         if p.is_dir() or p.suffix.lower() in (".parquet", ".pq"):
-            df = pq.read_table(p).to_pandas()
+            table = pq.read_table(p)
+            _duplicate_columns(table.column_names, str(p))
+            df = table.to_pandas()
         elif p.suffix.lower() in (".csv", ".tsv"):
-            df = pd.read_csv(p, sep="\t" if p.suffix.lower() == ".tsv" else ",", dtype=str,
-                             keep_default_na=False, na_values=[""], encoding="utf-8")
+            sep = "\t" if p.suffix.lower() == ".tsv" else ","
+            _duplicate_columns(pd.read_csv(p, sep=sep, nrows=0, encoding="utf-8").columns, str(p))
+            df = pd.read_csv(p, sep=sep, dtype=str, keep_default_na=False, na_values=[""], encoding="utf-8")
         else:
             raise InputError(f"unknown file type '{p.suffix}'.", source=str(p),
                              hint="Give a .parquet, .csv or .tsv file.")
@@ -83,6 +87,17 @@ def read_table(path: str | Path) -> pd.DataFrame:
     if len(df) == 0:
         raise InputError("the file has no rows.", source=str(p), hint="Give a non-empty table.")
     return df
+
+
+def _duplicate_columns(columns, source: str) -> None:
+    """Refuse a table whose header names one column twice (CSV readers rename the second 'x.1')."""
+    names = [str(c) for c in columns]
+    dup = sorted({n for n in names if names.count(n) > 1})
+    mangled = sorted(n for n in names if "." in n and n.rsplit(".", 1)[1].isdigit() and n.rsplit(".", 1)[0] in names)
+    if dup or mangled:
+        first = (dup or [m.rsplit(".", 1)[0] for m in mangled])[0]
+        raise InputError(f"the header names column '{first}' more than once (columns: {', '.join(names)}).",
+                         source=source, column=first, hint="Give each column one unique name.")
 
 
 def _sample(df: pd.DataFrame, mask, cols) -> list[str]:
@@ -106,9 +121,18 @@ def require_columns(df: pd.DataFrame, required, source: str) -> None:
 def normalize_ids(df: pd.DataFrame, column: str, source: str, intake: Intake) -> pd.Series:
     """Cast an id column to non-empty strings; nulls and empty ids are errors."""
     s = df[column]
+    odd = s.map(lambda v: isinstance(v, (bytes, bytearray, dict, list, tuple, set, np.ndarray)))
+    if odd.any():
+        kinds = sorted({type(v).__name__ for v in s[odd]})
+        raise InputError(f"{int(odd.sum())} id(s) that are {'/'.join(kinds)} values, not text or integers.",
+                         source=source, column=column, sample=_sample(df, odd, [column]),
+                         hint="Ids must be text or integers; flatten or convert the column upstream.")
+    if pd.api.types.is_bool_dtype(s):
+        raise InputError("booleans are not ids.", source=source, column=column,
+                         sample=_sample(df, s.index[:3], [column]), hint="Give text or integer ids.")
     if pd.api.types.is_float_dtype(s) and s.notna().all() and (s == np.floor(s)).all():
         s = s.astype("int64")
-    if pd.api.types.is_integer_dtype(s) or pd.api.types.is_bool_dtype(s):
+    if pd.api.types.is_integer_dtype(s):
         intake.note(f"column '{column}' holds integers; cast to strings")
         s = s.astype(str)
     bad = s.isna()
@@ -126,6 +150,21 @@ def normalize_ids(df: pd.DataFrame, column: str, source: str, intake: Intake) ->
 
 
 _TZ_SUFFIX = r"(?:[Zz]|[+-]\d\d(?::?\d\d)?)$"
+_EPOCH_MIN_US = 0.0                      # 1970-01-01
+_EPOCH_MAX_US = 4_102_444_800 * 1e6      # 2100-01-01
+
+
+def _localize(ts: pd.Series, zone: str, df: pd.DataFrame, column: str, source: str) -> pd.Series:
+    """Naive times in ``zone``; a time that does not exist there (a DST gap) or exists twice (an
+    overlap) is an input error naming the rows."""
+    try:
+        return ts.dt.tz_localize(zone, ambiguous="raise", nonexistent="raise")
+    except Exception:  # pytz/zoneinfo raise several classes for gaps and overlaps
+        gap = ts.dt.tz_localize(zone, ambiguous="NaT", nonexistent="NaT").isna() & ts.notna()
+        raise InputError(f"{int(gap.sum())} naive time(s) that do not exist, or exist twice, in {zone} (a "
+                         "daylight-saving change).", source=source, column=column,
+                         sample=_sample(df, gap.reindex(df.index, fill_value=False), [column]),
+                         hint="Write these times with an explicit offset (e.g. '+01:00') or in UTC.") from None
 
 
 def normalize_timestamps(df: pd.DataFrame, column: str, source: str, cfg: InputConfig) -> pd.Series:
@@ -145,12 +184,19 @@ def normalize_timestamps(df: pd.DataFrame, column: str, source: str, cfg: InputC
             bad = s.isna() | ~np.isfinite(s.astype(float))
             raise InputError("null or non-finite epoch.", source=source, column=column,
                              sample=_sample(df, bad, [column]))
+        per_us = {"s": 1e6, "ms": 1e3, "us": 1.0, "ns": 1e-3}[cfg.epoch_unit]
+        approx = s.astype("float64") * per_us  # range check first: no integer overflow, no silent wrap
+        out_of_range = (approx < _EPOCH_MIN_US) | (approx >= _EPOCH_MAX_US)
+        if out_of_range.any():
+            raise InputError(f"{int(out_of_range.sum())} epoch value(s) read as '{cfg.epoch_unit}' fall outside "
+                             "1970-2100.", source=source, column=column, sample=_sample(df, out_of_range, [column]),
+                             hint="Check input.epoch_unit: values this far off usually mean seconds read as "
+                                  "milliseconds or the other way round.")
         if pd.api.types.is_integer_dtype(s):
             v = s.astype("int64")
             micros = v // 1000 if cfg.epoch_unit == "ns" else v * {"s": 1_000_000, "ms": 1_000, "us": 1}[cfg.epoch_unit]
         else:
-            per_us = {"s": 1e6, "ms": 1e3, "us": 1.0, "ns": 1e-3}[cfg.epoch_unit]
-            micros = np.floor(s.astype("float64") * per_us).astype("int64")
+            micros = np.floor(approx).astype("int64")
         return pd.Series(pd.to_datetime(micros, unit="us", utc=True), index=s.index).astype(
             "datetime64[us, UTC]")
     if pd.api.types.is_datetime64_any_dtype(s):
@@ -177,7 +223,7 @@ def normalize_timestamps(df: pd.DataFrame, column: str, source: str, cfg: InputC
             if mask.any():
                 part = pd.to_datetime(text[mask], format="ISO8601", utc=utc)
                 if not utc:
-                    part = part.dt.tz_localize(cfg.timezone, ambiguous="raise", nonexistent="raise")
+                    part = _localize(part, cfg.timezone, df, column, source)
                 parsed[mask] = part.dt.tz_convert("UTC").astype("datetime64[us, UTC]")
         ts = parsed
     if ts.isna().any():
@@ -188,7 +234,7 @@ def normalize_timestamps(df: pd.DataFrame, column: str, source: str, cfg: InputC
             raise InputError("naive timestamps (no timezone) and no timezone configured.",
                              source=source, column=column, sample=_sample(df, ts.index[:3], [column]),
                              hint="Store timestamps with a timezone or set input.timezone.")
-        ts = ts.dt.tz_localize(cfg.timezone)
+        ts = _localize(ts, cfg.timezone, df, column, source)
     return ts.dt.tz_convert("UTC").dt.floor("us").astype("datetime64[us, UTC]")
 
 
@@ -199,12 +245,18 @@ def normalize_interactions(df: pd.DataFrame, cfg: InputConfig | None = None,
     intake = Intake(source=source, rows_in=len(df))
     if len(df) == 0:
         raise InputError("the table has no rows.", source=source, hint="Give a non-empty table.")
+    _duplicate_columns(df.columns, source)
     require_columns(df, INTERACTIONS_REQUIRED, source)
     out = pd.DataFrame(index=df.index)
     out["user_id"] = normalize_ids(df, "user_id", source, intake)
     out["item_id"] = normalize_ids(df, "item_id", source, intake)
     out["ts"] = normalize_timestamps(df, "ts", source, cfg)
     if "engagement" in df.columns:
+        if pd.api.types.is_bool_dtype(df["engagement"]):
+            raise InputError("engagement holds booleans; it must be a number (the reward before shaping).",
+                             source=source, column="engagement",
+                             sample=_sample(df, df.index[:3], ["user_id", "item_id", "engagement"]),
+                             hint="Cast it to numbers (e.g. 1.0 for true, 0.0 for false) if that is what it means.")
         eng = pd.to_numeric(df["engagement"], errors="coerce")
         bad = eng.isna() | ~np.isfinite(eng.astype(float).fillna(np.nan))
         if bad.any():
@@ -212,6 +264,12 @@ def normalize_interactions(df: pd.DataFrame, cfg: InputConfig | None = None,
                              source=source, column="engagement",
                              sample=_sample(df, bad, ["user_id", "item_id", "ts", "engagement"]),
                              hint="Engagement must be a finite number; drop the column for 1.0 everywhere.")
+        huge = eng.abs() > _ENGAGEMENT_MAX
+        if huge.any():
+            raise InputError(f"{int(huge.sum())} engagement value(s) beyond +-1e300: the shaped reward would "
+                             "overflow to infinity.", source=source, column="engagement",
+                             sample=_sample(df, huge, ["user_id", "item_id", "ts", "engagement"]),
+                             hint="Rescale engagement to an ordinary range.")
         out["engagement"] = eng.astype("float64")
     else:
         out["engagement"] = 1.0

@@ -136,3 +136,53 @@ def test_lazy_parquet_path_checks_the_same_contract(tmp_path, name):
             label_interactions(p, tax)
     good.to_parquet(tmp_path / "good.parquet")
     assert len(label_interactions(tmp_path / "good.parquet", tax)) == 2
+
+
+_TS = ["2026-03-01T00:00:00Z"] * 2
+BAD_FRAMES = {  # name: (interactions, extra flags, message)
+    "epoch_ms_read_as_s": (dict(ts=[1_700_000_000_000, 1_700_000_100_000]), ["--epoch-unit", "s"],
+                           r"column 'ts': 2 epoch value\(s\) read as 's' fall outside 1970-2100"),
+    "float_epoch_with_nan": (dict(ts=[1.7e9, float("nan")]), ["--epoch-unit", "s"], r"column 'ts': null or non-finite"),
+    "naive_time_in_dst_gap": (dict(ts=["2026-03-29T01:30:00", "2026-03-29T05:00:00"]), ["--timezone", "Europe/Lisbon"],
+                              r"column 'ts': 1 naive time\(s\) that do not exist, or exist twice"),
+    "naive_time_in_dst_overlap": (dict(ts=["2026-10-25T01:30:00", "2026-10-25T05:00:00"]),
+                                  ["--timezone", "Europe/Lisbon"], r"column 'ts': 1 naive time\(s\)"),
+    "boolean_engagement": (dict(ts=_TS, engagement=[True, False]), [], r"column 'engagement': engagement holds booleans"),
+    "engagement_overflowing": (dict(ts=_TS, engagement=[1e308, 1.0]), [], r"column 'engagement': 1 engagement value"),
+    "list_ids": (dict(ts=_TS, user_id=[[1], [2]]), [], r"column 'user_id': holds list"),
+    "binary_ids": (dict(ts=_TS, user_id=[b"u1", b"u2"]), [], r"column 'user_id': holds binary"),
+    "struct_ids": (dict(ts=_TS, user_id=[{"a": 1}, {"a": 2}]), [], r"column 'user_id': holds struct"),
+}
+
+
+@pytest.mark.parametrize("name", sorted(BAD_FRAMES))
+def test_bad_parquet_inputs_exit_2_naming_the_column(cli, fixtures, tmp_path, name):
+    """Epochs off by 1000x, NaN epochs, naive times in a DST gap or overlap, boolean or overflowing
+    engagement, and ids that are lists, bytes or structs: exit 2, file and column named, no traceback."""
+    columns, extra, message = BAD_FRAMES[name]
+    frame = pd.DataFrame({"user_id": ["u1", "u2"], "item_id": ["a1", "a2"], **columns})
+    frame.to_parquet(tmp_path / f"{name}.parquet")
+    cli("taxonomy", "build", "--items", fixtures / "items.csv", "--out", tmp_path / "tax", "--from-categories",
+        "category", "-q")
+    code, _, err = cli("label", "--taxonomy", tmp_path / "tax", "--interactions", tmp_path / f"{name}.parquet",
+                       "--out", tmp_path / "out", "-q", *extra)
+    assert code == 2 and f"{name}.parquet" in err and "Traceback" not in err, err
+    assert re.search(message, err), err
+
+
+@pytest.mark.parametrize("kind", ["csv", "parquet"])
+def test_a_header_naming_a_column_twice_exits_2(cli, fixtures, tmp_path, kind):
+    """A CSV or Parquet header with 'ts' twice is refused, naming the column (CSV readers would
+    otherwise rename the second one and take the first silently)."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+    path = tmp_path / f"dup.{kind}"
+    if kind == "csv":
+        path.write_text("user_id,item_id,ts,ts\nu1,a1,2026-03-01T00:00:00Z,2026-03-02T00:00:00Z\n")
+    else:
+        pq.write_table(pa.Table.from_arrays([pa.array(["u1"]), pa.array(["a1"]), pa.array(["2026-03-01T00:00:00Z"]),
+                                             pa.array(["x"])], names=["user_id", "item_id", "ts", "ts"]), path)
+    cli("taxonomy", "build", "--items", fixtures / "items.csv", "--out", tmp_path / "tax", "--from-categories",
+        "category", "-q")
+    code, _, err = cli("label", "--taxonomy", tmp_path / "tax", "--interactions", path, "--out", tmp_path / "o", "-q")
+    assert code == 2 and "column 'ts': the header names column 'ts' more than once" in err, err

@@ -369,6 +369,27 @@ def test_a_run_that_only_rejected_a_partition_says_so(tmp_path, scenario):
     assert res.exit_code == 1 and res.manifest["status"] == "nothing committed: 1 partition(s) rejected"
 
 
+def test_a_dst_gap_or_a_schema_mismatch_rejects_only_that_partition(tmp_path, scenario):
+    """With on_bad_partition = "skip", a partition with a naive time in a DST gap and one whose
+    files disagree on their schema are rejected by path; the other new partitions are committed."""
+    from labeler.config import InputConfig
+    root, dates = setup_root(tmp_path, scenario, 10)
+    cfg = make_config(root).model_copy(update={"input": InputConfig(timezone="Europe/Lisbon")})
+    run_job(cfg)
+    write_days(scenario[1], root / "interactions", dates[10:12])
+    gap = root / "interactions" / "date=2026-03-29"
+    gap.mkdir()
+    (gap / "part-0.csv").write_text("user_id,item_id,ts\nu0001,v00001,2026-03-29T01:30:00\n")
+    mixed = root / "interactions" / f"date={dates[11]}"
+    pd.read_parquet(mixed / "part-0.parquet").head(3).astype({"ts": str}).to_parquet(mixed / "part-1.parquet")
+    res = run_job(cfg)
+    assert res.exit_code == 1 and res.manifest["status"] == "committed"
+    assert set(res.manifest["rejected"]) == {"2026-03-29", dates[11]}
+    assert "daylight-saving" in res.manifest["rejected"]["2026-03-29"]
+    assert "part-1.parquet" in res.manifest["rejected"][dates[11]] and "schema differs" in res.manifest["rejected"][dates[11]]
+    assert res.manifest["partitions"][dates[10]] == "new"
+
+
 def test_bad_partition_stops_the_run_when_configured(tmp_path, scenario):
     root, dates = setup_root(tmp_path, scenario, 12)
     cfg = make_config(root, on_bad_partition="stop")

@@ -126,6 +126,17 @@ def stage(part: Partition, content_hash: str, work: Path, cfg: InputConfig, hori
     if not frames:
         raise InputError("the partition holds no data files.", source=str(part.path),
                          hint="Put .parquet or .csv files in it, or remove it.")
+    for f, frame in zip(part.files[1:], frames[1:]):  # one partition, one schema
+        first = frames[0]
+        if list(frame.columns) != list(first.columns) or any(
+                str(frame[c].dtype) != str(first[c].dtype) for c in first.columns):
+            diff = sorted(set(map(str, frame.columns)) ^ set(map(str, first.columns))) or [
+                c for c in first.columns if str(frame[c].dtype) != str(first[c].dtype)]
+            raise InputError(f"its schema differs from {part.files[0].name}'s (column '{diff[0]}': "
+                             f"{', '.join(f'{c} {t}' for c, t in first.dtypes.astype(str).items())} vs "
+                             f"{', '.join(f'{c} {t}' for c, t in frame.dtypes.astype(str).items())}).",
+                             source=str(f), column=str(diff[0]),
+                             hint="Write every file of a partition with the same columns and types.")
     df = pd.concat(frames, ignore_index=True) if len(frames) > 1 else frames[0]
     rows_in = len(df)
     if rows_in:
