@@ -69,3 +69,13 @@ def on_engine(engine_name, request, monkeypatch):
         import labeler.labelling as labelling
         monkeypatch.setattr(labelling, "make_engine", lambda *a, **k: eng)
     return engine_name
+
+
+_DATASET_FIXTURES = {"movielens", "ml"}  # fixtures that fetch an open dataset (tests/external.py)
+
+
+def pytest_collection_modifyitems(items):
+    """Tests on an open dataset are in the 'external' group, whether or not they say so."""
+    for item in items:
+        if _DATASET_FIXTURES & set(getattr(item, "fixturenames", ())):
+            item.add_marker(pytest.mark.external)
