@@ -181,7 +181,8 @@ class JobConfig(_Strict):
     run: RunConfig = RunConfig()
 
 
-def _env_overrides(environ: dict[str, str]) -> dict[str, Any]:
+def _env_overrides(environ: dict[str, str], origins: dict[str, str] | None = None) -> dict[str, Any]:
+    """Settings from LABELER__SECTION__KEY variables; ``origins`` gets "section.key" -> variable."""
     out: dict[str, Any] = {}
     for key, raw in environ.items():
         if not key.startswith(ENV_PREFIX):
@@ -195,6 +196,8 @@ def _env_overrides(environ: dict[str, str]) -> dict[str, Any]:
         for part in path[:-1]:
             node = node.setdefault(part, {})
         node[path[-1]] = value
+        if origins is not None:
+            origins[".".join(path)] = key
     return out
 
 
@@ -230,22 +233,27 @@ def load_job_config(path: str | Path | None = None, flags: dict[str, Any] | None
         if isinstance(tax, dict) and isinstance(tax.get("embedding_cache"), str) \
                 and not Path(tax["embedding_cache"]).is_absolute():
             tax["embedding_cache"] = str((p.parent / tax["embedding_cache"]).resolve())
-    data = _merge(data, _env_overrides(os.environ if environ is None else environ))
+    origins: dict[str, str] = {}
+    data = _merge(data, _env_overrides(os.environ if environ is None else environ, origins))
     data = _merge(data, flags or {})
-    return validate_config(JobConfig, data, source)
+    return validate_config(JobConfig, data, source, origins)
 
 
-def validate_config(model: type[_Strict], data: dict[str, Any], source: str = "settings"):
-    """Validate a dict into ``model``, turning pydantic's error into one ConfigError."""
+def validate_config(model: type[_Strict], data: dict[str, Any], source: str = "settings",
+                    origins: dict[str, str] | None = None):
+    """Validate a dict into ``model``, turning pydantic's error into one ConfigError; a value that
+    came from the environment names its variable (``origins``: "section.key" -> variable)."""
     try:
         return model.model_validate(data)
     except ValidationError as exc:
         lines = []
         for err in exc.errors():
             where = ".".join(str(p) for p in err["loc"]) or "(root)"
+            var = next((v for k, v in (origins or {}).items() if where == k or where.startswith(k + ".")), None)
+            via = f" (from environment variable {var})" if var else ""
             if err["type"] == "extra_forbidden":
-                lines.append(f"unknown key '{where}'")
+                lines.append(f"unknown key '{where}'{via}")
             else:
-                lines.append(f"'{where}': {err['msg']} (got {err.get('input')!r})")
+                lines.append(f"'{where}': {err['msg']} (got {err.get('input')!r}){via}")
         raise ConfigError(f"{source}: invalid {model.__name__}: " + "; ".join(lines)
                           + ". See README 'Configuration' for the valid keys.") from None

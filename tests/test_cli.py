@@ -123,3 +123,31 @@ def test_readme_configuration_example_is_a_valid_job_file():
     block = text.split("## Configuration", 1)[1].split("```toml\n", 1)[1].split("```", 1)[0]
     cfg = validate_config(JobConfig, tomllib.loads(block))
     assert cfg.run.lookback_partitions == 3 and cfg.engine.shuffle_partitions == 64
+
+
+def test_a_mistyped_environment_override_names_the_variable():
+    """LABELER__LABELS__MIN_SUPORT (a typo) and a bad value are refused naming the variable."""
+    from labeler import load_job_config
+    from labeler.errors import ConfigError
+    with pytest.raises(ConfigError, match=r"unknown key 'labels.min_suport' \(from environment variable "
+                                          r"LABELER__LABELS__MIN_SUPORT\)"):
+        load_job_config(environ={"LABELER__LABELS__MIN_SUPORT": "2"})
+    with pytest.raises(ConfigError, match=r"'labels.min_support'.*\(from environment variable LABELER__LABELS__MIN_SUPPORT\)"):
+        load_job_config(environ={"LABELER__LABELS__MIN_SUPPORT": "zero"})
+
+
+def test_progress_bars_only_on_a_terminal(cli, fixtures, tmp_path):
+    """Redirected (as under a scheduler), taxonomy build draws no progress bar on stderr."""
+    code, _, err = cli("taxonomy", "build", "--items", fixtures / "items.csv", "--out", tmp_path / "tax",
+                       "--embedder", "hashing")
+    assert code == 0, err
+    assert "it/s" not in err and "\r" not in err
+
+
+def test_json_log_times_carry_their_zone():
+    """`labeler run --log-format json` writes ISO 8601 times with the UTC offset."""
+    import json
+    import logging
+    from labeler.cli._run import _JsonLines
+    line = _JsonLines().format(logging.LogRecord("labeler", logging.INFO, __file__, 1, "hello", None, None))
+    assert json.loads(line)["time"].endswith("+00:00")

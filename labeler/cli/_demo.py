@@ -2,7 +2,7 @@
 from __future__ import annotations
 
 from ..demo import run_demo
-from ._options import add_common, add_embedder
+from ._options import add_common, add_embedder, show_progress
 
 
 def register(sub) -> None:
@@ -18,7 +18,7 @@ def register(sub) -> None:
 def run(args) -> int:
     from ..embed import HashingEmbedder
     embedder = HashingEmbedder(256) if args.embedder == "hashing" else None
-    s = run_demo(args.out, seed=args.seed, embedder=embedder, progress=not args.quiet, small=args.small)
+    s = run_demo(args.out, seed=args.seed, embedder=embedder, progress=show_progress(args), small=args.small)
     t, lab = s["taxonomy"], s["labels"]
     print(f"demo scenario (seed {s['seed']}): {s['items']} items, {s['interactions']} interactions, "
           f"{s['users']} users -> {args.out}/data/")

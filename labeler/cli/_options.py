@@ -13,6 +13,12 @@ def add_common(p: argparse.ArgumentParser, config: bool = True) -> None:
     p.add_argument("-q", "--quiet", action="store_true", help="no progress bars or info logs")
 
 
+def show_progress(args: argparse.Namespace) -> bool:
+    """Progress bars only on a terminal, and never under -q (a scheduler's log stays clean)."""
+    import sys
+    return not getattr(args, "quiet", False) and sys.stderr.isatty()
+
+
 def add_input(p: argparse.ArgumentParser) -> None:
     p.add_argument("--timezone", help="IANA zone for naive timestamps (default: reject them)")
     p.add_argument("--epoch-unit", choices=["s", "ms", "us", "ns"], help="unit of integer epoch timestamps")

@@ -23,7 +23,9 @@ def register(sub) -> None:
 
 class _JsonLines(logging.Formatter):
     def format(self, record: logging.LogRecord) -> str:
-        return json.dumps({"time": self.formatTime(record, "%Y-%m-%dT%H:%M:%S"), "level": record.levelname,
+        import datetime as dt
+        when = dt.datetime.fromtimestamp(record.created, dt.timezone.utc).isoformat(timespec="milliseconds")
+        return json.dumps({"time": when, "level": record.levelname,
                            "logger": record.name, "message": record.getMessage()})
 
 

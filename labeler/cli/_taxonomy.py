@@ -3,7 +3,7 @@ from __future__ import annotations
 
 from ..tables import read_table
 from ..taxonomy import Taxonomy, build_taxonomy
-from ._options import add_common, add_embedder, job_config, make_embedder
+from ._options import add_common, add_embedder, job_config, make_embedder, show_progress
 
 
 def register(sub) -> None:
@@ -37,7 +37,7 @@ def run_build(args) -> int:
     else:
         previous = Taxonomy.load(args.previous) if args.previous else None
         tax = build_taxonomy(items, cfg.taxonomy, embedder=make_embedder(args, cfg), previous=previous,
-                             progress=not args.quiet, source=args.items)
+                             progress=show_progress(args), source=args.items)
     tax.save(args.out)
     _print_taxonomy(tax, args.out)
     return 0
@@ -59,7 +59,7 @@ def _print_taxonomy(tax: Taxonomy, out: str) -> None:
 def run_assign(args) -> int:
     tax = Taxonomy.load(args.taxonomy)
     items = read_table(args.items)
-    rows = tax.assign(items, progress=not args.quiet)
+    rows = tax.assign(items, progress=show_progress(args))
     if str(args.out).lower().endswith(".csv"):
         rows.to_csv(args.out, index=False)
     else:
