@@ -100,12 +100,12 @@ class DuckDBEngine(Engine):
         sql = self.con.compile(expr)
         return self.con.con.sql(sql).to_arrow_reader(rows)
 
-    def content_hash(self, expr, columns, extra: str = "") -> str:
-        """Order-independent hash of the rows of ``expr`` over ``columns``.
+    def content_sums(self, expr, columns) -> tuple[int, int, int]:
+        """(rows, sum of upper and of lower MD5 halves) of ``expr`` over ``columns``: additive over
+        disjoint parts of a table, so pieces can be hashed apart and combined (see content_hash).
 
         Each row is rendered canonically (integers in decimal, floats with 9 decimals, booleans as
-        0/1, null as \\N), hashed with MD5, and the two 64-bit halves are summed: the same rows give
-        the same hash on any engine that renders them alike.
+        0/1, null as \\N), hashed with MD5, and the two 64-bit halves are summed.
         """
         view = f"_hash_{uuid.uuid4().hex[:8]}"
         self.con.create_view(view, expr.select(*columns), overwrite=True)
@@ -114,8 +114,11 @@ class DuckDBEngine(Engine):
             f"SELECT count(*), sum(md5_number_upper(s)::HUGEINT), sum(md5_number_lower(s)::HUGEINT) "
             f"FROM (SELECT {row} AS s FROM {view})").fetchone()
         self.con.drop_view(view)
-        digest = hashlib.sha256(f"{extra}\x00{n}\x00{hi or 0}\x00{lo or 0}".encode()).hexdigest()
-        return digest
+        return int(n), int(hi or 0), int(lo or 0)
+
+    def content_hash(self, expr, columns, extra: str = "") -> str:
+        """Order-independent hash of the rows of ``expr`` over ``columns``, alike on every engine."""
+        return sums_digest(self.content_sums(expr, columns), extra)
 
 
 class SparkEngine(Engine):
@@ -195,8 +198,8 @@ class SparkEngine(Engine):
         sdf.unpersist()
         return n
 
-    def content_hash(self, expr, columns, extra: str = "") -> str:
-        """The same canonical row hash as DuckDBEngine.content_hash, in Spark SQL."""
+    def content_sums(self, expr, columns) -> tuple[int, int, int]:
+        """The same canonical row sums as DuckDBEngine.content_sums, in Spark SQL."""
         view = f"_hash_{uuid.uuid4().hex[:8]}"
         sub = expr.select(*columns)
         self.session.sql(self.con.compile(sub)).createOrReplaceTempView(view)
@@ -206,7 +209,17 @@ class SparkEngine(Engine):
             return f"sum(CAST(conv(concat({rev}), 16, 10) AS DECIMAL(38, 0)))"
         n, hi, lo = self.session.sql(
             f"SELECT count(*), {half(1)}, {half(17)} FROM (SELECT md5({row}) AS h FROM {view})").collect()[0]
-        return hashlib.sha256(f"{extra}\x00{n}\x00{int(hi or 0)}\x00{int(lo or 0)}".encode()).hexdigest()
+        return int(n), int(hi or 0), int(lo or 0)
+
+    def content_hash(self, expr, columns, extra: str = "") -> str:
+        """The same canonical row hash as DuckDBEngine.content_hash."""
+        return sums_digest(self.content_sums(expr, columns), extra)
+
+
+def sums_digest(sums: tuple[int, int, int], extra: str = "") -> str:
+    """The canonical content hash from (rows, upper sum, lower sum), however the rows were split."""
+    n, hi, lo = sums
+    return hashlib.sha256(f"{extra}\x00{n}\x00{hi}\x00{lo}".encode()).hexdigest()
 
 
 _DIALECTS = {  # quoting, float formatting, integer and text types, the null marker

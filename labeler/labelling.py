@@ -24,8 +24,9 @@ import pyarrow.parquet as pq
 
 from . import __version__
 from .config import InputConfig, LabelConfig
-from .engines import Engine, make_engine
-from .intake import interactions_table, item_topics_table
+from .engines import Engine, make_engine, sums_digest
+from .intake import Staged, interactions_table, item_topics_table
+from .intake import _COLUMNS as _INPUT_COLUMNS
 from .labels import carried_rows, continue_history, continued_history, each_interaction_once, footprint_rows, \
     heavy_users, known_topic_counts, known_transitions, label_rows, prepare, topic_rows, user_history, with_support
 from .tables import FOOTPRINTS_COLUMNS, LABEL_VALUES, LABELS_COLUMNS, Intake
@@ -104,6 +105,8 @@ class LabelRun:
     base_shared: bool = False
     carried: Any = None    # (footprints, users) engine tables and the watermark, when continuing
     carried_until_us: int | None = None
+    taxonomy: Any = None   # what the plan labels with (pieces of a bucketed write plan with it again)
+    written: dict | None = None  # after a write in pieces: the footprints file and history it wrote
 
     def share_base(self) -> "LabelRun":
         """Compute the topic rows once into an engine table, for results that read them again."""
@@ -132,6 +135,8 @@ class LabelRun:
     @property
     def as_of_us(self) -> int | None:
         if self.as_of is None:
+            if self.written is not None:
+                return self.written["as_of_us"]
             return self.counts["max_ts_us"]
         ts = pd.Timestamp(self.as_of)
         return int((ts.tz_convert("UTC") if ts.tz else ts.tz_localize("UTC")).value // 1000)
@@ -176,12 +181,16 @@ class LabelRun:
         return self.labels_arrow().to_pandas()
 
     def footprints_arrow(self) -> pa.Table:
+        if self.written is not None:
+            return pq.read_table(self.written["footprints"])
         t = self.footprints
         t = t.order_by([t.user_id, t.level, t.topic_id])
         return _finish_footprints(self.engine.to_arrow(t))
 
     def history_frame(self) -> pd.DataFrame:
         """user_id, history_len: each user's interactions up to ``as_of_us`` (unplaced ones included)."""
+        if self.written is not None:
+            return self.written["history"].to_pandas()
         return self.engine.to_pandas(self.history)
 
     def footprints_frame(self) -> pd.DataFrame:
@@ -189,25 +198,33 @@ class LabelRun:
 
     def content_hash(self) -> str:
         """Order-independent canonical hash of the labels rows, equal across engines and machines."""
-        return self.engine.content_hash(self.labels, _CANON_COLUMNS,
-                                        extra=f"{self.taxonomy_version}\x00{self.labels_version}")
+        return sums_digest(self.engine.content_sums(self.labels, _CANON_COLUMNS), self._hash_extra)
+
+    @property
+    def _hash_extra(self) -> str:
+        return f"{self.taxonomy_version}\x00{self.labels_version}"
 
     # -- summary --------------------------------------------------------------------------------
-    def summary(self) -> dict[str, Any]:
-        """Counts per label and level, new-interest and discovery shares, weekly new-interest rate."""
+    def summary_parts(self) -> dict[str, Any]:
+        """The summary's raw counts, additive over runs on disjoint sets of users."""
         t = self.labels
         by = t.group_by(["level", "label"]).aggregate(n=t.count(), disc=t.discovery.cast("int64").sum(),
                                                       boosted=(t.reward_multiplier > 1).cast("int64").sum())
-        by = self.engine.to_pandas(by)
         week = t.mutate(week=t.ts.truncate("W").date())
         wk = week.group_by(["level", "week"]).aggregate(
             n=week.count(), new=(week.label == "new_interest").cast("int64").sum())
-        wk = self.engine.to_pandas(wk).sort_values(["level", "week"])
         users = int(self.engine.to_pandas(t.aggregate(u=t.user_id.nunique()))["u"].iloc[0])
         per = t.group_by(["user_id", "item_id", "ts_us", "event_id"]).aggregate(
             placed=(t.label != "unplaced").cast("int64").max())
         unplaced = per.filter(per.placed == 0)
         no_topic = int(self.engine.to_pandas(unplaced.aggregate(n=unplaced.count()))["n"].iloc[0])
+        return {"by": self.engine.to_pandas(by), "weeks": self.engine.to_pandas(wk), "users": users,
+                "no_topic": no_topic, "counts": dict(self.counts)}
+
+    def summary(self, parts: dict[str, Any] | None = None) -> dict[str, Any]:
+        """Counts per label and level, new-interest and discovery shares, weekly new-interest rate."""
+        p = parts or self.summary_parts()
+        by, wk = p["by"], p["weeks"].sort_values(["level", "week"])
         levels = {}
         for level, g in by.groupby("level"):
             total = int(g["n"].sum())
@@ -222,35 +239,49 @@ class LabelRun:
                 "new_interest_rate_by_week": [
                     {"week": str(r.week), "rows": int(r.n), "new_interest_rate": _share(int(r.new), int(r.n))}
                     for r in w.itertuples()]}
+        as_of = self.as_of_us if self.as_of is not None else p["counts"]["max_ts_us"]
         return {"taxonomy_version": self.taxonomy_version, "labels_version": self.labels_version,
-                "tool_version": __version__, "users": users, "input": {
+                "tool_version": __version__, "users": p["users"], "input": {
                     "source": self.intake.source, "rows": self.intake.rows_in,
-                    **{k: v for k, v in self.counts.items() if k != "max_ts_us"},
-                    "interactions_on_items_without_topics": no_topic,
+                    **{k: v for k, v in p["counts"].items() if k != "max_ts_us"},
+                    "interactions_on_items_without_topics": p["no_topic"],
                     "notes": self.intake.notes},
-                "as_of": _iso_us(self.as_of_us), "config": json.loads(self.config.canonical_json()),
+                "as_of": _iso_us(as_of), "config": json.loads(self.config.canonical_json()),
                 "levels": levels}
 
     # -- writing --------------------------------------------------------------------------------
-    def write(self, out_dir: str | os.PathLike) -> dict[str, Any]:
-        """Write labels (Parquet partitioned by date), footprints and summary.json atomically."""
+    def write(self, out_dir: str | os.PathLike, progress: bool = False) -> dict[str, Any]:
+        """Write labels (Parquet partitioned by date), footprints and summary.json atomically.
+
+        A run over more than ``engine.bucket_rows`` interactions is labelled in pieces of users
+        (ranges of user ids, each piece in memory), so time grows linearly and memory stays
+        bounded; the files are the same bytes either way. ``progress`` shows the pieces' progress
+        (interactions and users done, rate, time left).
+        """
         out = Path(out_dir)
         out.mkdir(parents=True, exist_ok=True)
-        self.materialize()
         tmp = out / f".tmp-{uuid.uuid4().hex}"
         tmp.mkdir()
-        if hasattr(self.engine, "write_partitioned"):  # a distributed engine writes from its workers
-            t = self.labels
-            t = t.mutate(date=t.ts.date().cast("string"), taxonomy_version=ibis.literal(self.taxonomy_version),
-                         labels_version=ibis.literal(self.labels_version))
-            n = self.engine.write_partitioned(t, tmp / "labels", list(SORT_KEYS), LABELS_SCHEMA)
+        limit = getattr(self.engine.config, "bucket_rows", None)
+        pieces = limit is not None and self.intake.rows_in > limit and self.carried is None \
+            and self.taxonomy is not None and not hasattr(self.engine, "write_partitioned")
+        if pieces:
+            n, fp_rows, summary, history = _write_in_pieces(self, tmp, limit, progress)
         else:
-            n = _write_partitioned(self, tmp / "labels")
-        fp = self.footprints_arrow()
-        pq.write_table(fp, tmp / "footprints.parquet", row_group_size=ROW_GROUP)
-        summary = self.summary()
-        summary["outputs"] = {"labels_rows": n, "footprints_rows": fp.num_rows,
-                              "labels_content_hash": self.content_hash()}
+            self.materialize()
+            if hasattr(self.engine, "write_partitioned"):  # a distributed engine writes from its workers
+                t = self.labels
+                t = t.mutate(date=t.ts.date().cast("string"), taxonomy_version=ibis.literal(self.taxonomy_version),
+                             labels_version=ibis.literal(self.labels_version))
+                n = self.engine.write_partitioned(t, tmp / "labels", list(SORT_KEYS), LABELS_SCHEMA)
+            else:
+                n = _write_partitioned(self, tmp / "labels")
+            fp = self.footprints_arrow()
+            pq.write_table(fp, tmp / "footprints.parquet", row_group_size=ROW_GROUP)
+            fp_rows = fp.num_rows
+            summary = self.summary()
+            summary["outputs"] = {"labels_content_hash": self.content_hash()}
+        summary["outputs"].update(labels_rows=n, footprints_rows=fp_rows)
         (tmp / "summary.json").write_text(json.dumps(summary, indent=2, sort_keys=True) + "\n")
         for name in ("labels", "footprints.parquet", "summary.json"):  # summary.json goes last
             dest = out / name
@@ -259,9 +290,134 @@ class LabelRun:
                 os.replace(dest, trash)
                 shutil.rmtree(trash, ignore_errors=True) if trash.is_dir() else trash.unlink()
             os.replace(tmp / name, dest)
-        tmp.rmdir()
-        log.info("wrote %d label rows and %d footprint rows to %s", n, fp.num_rows, out)
+        shutil.rmtree(tmp, ignore_errors=True)
+        if pieces:
+            self.written = {"footprints": out / "footprints.parquet", "history": history[0], "as_of_us": history[1]}
+        log.info("wrote %d label rows and %d footprint rows to %s", n, fp_rows, out)
         return summary
+
+
+def user_ranges(counts: pa.Table, limit: int) -> list[tuple[str | None, str | None]]:
+    """Ranges [lo, hi) of user ids, in id order, each holding about ``limit`` interactions (a
+    heavier user is a range of its own). ``counts``: user_id, n."""
+    counts = counts.take(pc.sort_indices(counts, [("user_id", "ascending")]))
+    ids, ns = counts.column("user_id").to_pylist(), counts.column("n").to_pylist()
+    ranges, lo, held = [], None, 0
+    for user, n in zip(ids, ns):
+        if held and held + n > limit:
+            ranges.append((lo, user))
+            lo, held = user, 0
+        held += n
+    ranges.append((lo, None))
+    return ranges
+
+
+def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = False):
+    """Label ``run`` one range of users at a time, then join the pieces in user order.
+
+    Every rule is per user, so a piece's rows are exactly the whole run's rows of its users; the
+    pieces are written sorted, and each date's file (and the footprints) is their concatenation
+    in range order, cut into the same row groups as a single pass: the same bytes.
+    Returns (label rows, footprint rows, summary, history table).
+    """
+    eng, cfg, ev = run.engine, run.config, run.ev
+    prepared = prepare(ev, cfg)
+    stats = eng.to_arrow(prepared.group_by("user_id").aggregate(n=prepared.count(), mx=prepared.ts_us.max()))
+    raw = eng.to_arrow(ev.group_by("user_id").aggregate(n=ev.count()))
+    if run.as_of is not None:
+        as_of_us = run.as_of_us
+    else:
+        keep = stats if cfg.max_user_events is None else stats.filter(pc.less_equal(stats.column("n"), cfg.max_user_events))
+        as_of_us = pc.max(keep.column("mx")).as_py()
+    as_of = None if as_of_us is None else pd.Timestamp(as_of_us, unit="us", tz="UTC")
+    ranges = user_ranges(raw, limit)
+    rows_of = dict(zip(raw.column("user_id").to_pylist(), raw.column("n").to_pylist()))
+    log.info("labelling %d interactions of %d users in %d pieces of about %d", run.intake.rows_in, raw.num_rows,
+             len(ranges), limit)
+    n = 0
+    sums = [0, 0, 0]
+    parts, histories, fp_files = [], [], []
+    bounds = sorted(rows_of)
+    from tqdm import tqdm
+    bar = tqdm(total=run.intake.rows_in, unit=" interactions", unit_scale=True, disable=not progress,
+               desc="labelling in pieces")
+    users_done = 0
+    for k, (lo, hi) in enumerate(ranges):
+        sel = ev
+        if lo is not None:
+            sel = sel.filter(sel.user_id >= lo)
+        if hi is not None:
+            sel = sel.filter(sel.user_id < hi)
+        import bisect
+        a = 0 if lo is None else bisect.bisect_left(bounds, lo)
+        b = len(bounds) if hi is None else bisect.bisect_left(bounds, hi)
+        piece_rows = sum(rows_of[u] for u in bounds[a:b])
+        staged = Staged(sel.select(*_INPUT_COLUMNS), source=run.intake.source, rows=piece_rows,
+                        content_hash=run.intake.content_hash)
+        sub = plan_labels(staged, run.taxonomy, cfg, engine=eng, as_of=as_of).materialize()
+        sub.labels_version = run.labels_version
+        n += _write_partitioned(sub, tmp / "pieces" / f"{k:06d}")
+        fp_files.append(tmp / "pieces" / f"fp-{k:06d}.parquet")
+        pq.write_table(sub.footprints_arrow(), fp_files[-1])
+        histories.append(pa.Table.from_pandas(sub.history_frame(), preserve_index=False))
+        parts.append(sub.summary_parts())
+        sums = [x + y for x, y in zip(sums, eng.content_sums(sub.labels, _CANON_COLUMNS))]
+        for t in (sub.labels, sub._base):
+            if hasattr(t, "release"):
+                t.release()
+        log.info("piece %d of %d: users [%s, %s), %d interactions", k + 1, len(ranges), lo, hi, piece_rows)
+        users_done += b - a
+        bar.set_postfix_str(f"{users_done:,} of {len(bounds):,} users, piece {k + 1}/{len(ranges)}")
+        bar.update(piece_rows)
+    bar.close()
+    _join_label_pieces(tmp / "pieces", tmp / "labels", len(ranges))
+    fp_rows = _join_pieces(fp_files, tmp / "footprints.parquet", FOOTPRINTS_SCHEMA)
+    shutil.rmtree(tmp / "pieces")
+    counts = {}
+    for p in parts:
+        for key, v in p["counts"].items():
+            counts[key] = (max(x for x in (counts.get(key), v) if x is not None) if counts.get(key) is not None
+                           else v) if key == "max_ts_us" else counts.get(key, 0) + v
+    merged = {"by": pd.concat([p["by"] for p in parts]).groupby(["level", "label"], as_index=False).sum(),
+              "weeks": pd.concat([p["weeks"] for p in parts]).groupby(["level", "week"], as_index=False).sum(),
+              "users": sum(p["users"] for p in parts), "no_topic": sum(p["no_topic"] for p in parts),
+              "counts": counts}
+    summary = run.summary(merged)
+    summary["outputs"] = {"labels_content_hash": sums_digest(tuple(sums), run._hash_extra)}
+    history = pa.concat_tables(histories) if histories else pa.table({"user_id": [], "history_len": []})
+    return n, fp_rows, summary, (history, as_of_us)
+
+
+def _join_label_pieces(pieces: Path, root: Path, count: int) -> None:
+    """Each date's file: the pieces' files of that date, in piece order."""
+    dates = sorted({p.name for k in range(count) for p in (pieces / f"{k:06d}").glob("date=*")})
+    root.mkdir(parents=True)
+    for date in dates:
+        files = [pieces / f"{k:06d}" / date / "part-0.parquet" for k in range(count)]
+        (root / date).mkdir()
+        _join_pieces([f for f in files if f.exists()], root / date / "part-0.parquet", LABELS_SCHEMA)
+
+
+def _join_pieces(files: list[Path], dest: Path, schema: pa.Schema) -> int:
+    """Concatenate Parquet files into ``dest`` in ROW_GROUP-row groups, streaming. Returns the rows."""
+    total, pending = 0, []
+    with pq.ParquetWriter(dest, schema) as writer:
+        def flush(final: bool) -> None:
+            nonlocal pending
+            tbl = pa.concat_tables(pending) if pending else None
+            while tbl is not None and (tbl.num_rows >= ROW_GROUP or (final and tbl.num_rows)):
+                writer.write_table(tbl.slice(0, ROW_GROUP), row_group_size=ROW_GROUP)
+                tbl = tbl.slice(ROW_GROUP)
+            pending = [tbl] if tbl is not None and tbl.num_rows else []
+        for f in files:
+            pf = pq.ParquetFile(f)
+            for i in range(pf.num_row_groups):
+                t = pf.read_row_group(i).cast(schema)
+                total += t.num_rows
+                pending.append(t)
+                flush(False)
+        flush(True)
+    return total
 
 
 _CANON_COLUMNS = ("user_id", "item_id", "ts_us", "event_id", "level", "topic_id", "label", "engaged",
@@ -371,7 +527,7 @@ def plan_labels(interactions, taxonomy, config: LabelConfig | None = None, *,
     version = hashlib.sha256("\x00".join([taxonomy.version, cfg.canonical_json(), intake.content_hash,
                                           __version__]).encode()).hexdigest()
     return LabelRun(eng, cfg, taxonomy.version, version, labels, base, transitions, ev, intake, as_of, heavy=heavy,
-                    single_topic=single_topic, carried=state, carried_until_us=until)
+                    single_topic=single_topic, carried=state, carried_until_us=until, taxonomy=taxonomy)
 
 
 def _label_expr(base, transitions, cfg: LabelConfig, single_topic: bool, after_us: int | None = None):

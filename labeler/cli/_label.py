@@ -4,7 +4,7 @@ from __future__ import annotations
 from ..engines import make_engine
 from ..labelling import plan_labels
 from ..taxonomy import Taxonomy
-from ._options import add_common, add_input, job_config
+from ._options import add_common, add_input, job_config, show_progress
 
 
 def register(sub) -> None:
@@ -24,7 +24,7 @@ def run(args) -> int:
     tax = Taxonomy.load(args.taxonomy)
     result = plan_labels(args.interactions, tax, cfg.labels, input_config=cfg.input,
                          engine=make_engine(cfg.engine))
-    summary = result.write(args.out)
+    summary = result.write(args.out, progress=show_progress(args))
     print_summary(summary, args.out)
     if args.store:
         from ..store import publish_store
