@@ -151,17 +151,32 @@ class GenerationWriter:
 
     def write_people(self, footprints: pa.Table, users: pa.Table, aged) -> None:
         """footprints.parquet and users.parquet: previous rows of others (aged to the new
-        watermark by ``aged``), plus the re-labelled users' new rows."""
-        fp_parts, us_parts = [footprints.cast(FOOTPRINTS_SCHEMA)], [users.cast(USERS_SCHEMA)]
+        watermark by ``aged``), plus the re-labelled users' new rows.
+
+        The previous files are sorted and hold no row of the users written anew, so only the new
+        rows are sorted, and the two are merged by user."""
+        fp = _sorted(footprints.cast(FOOTPRINTS_SCHEMA), FOOTPRINT_SORT)
+        us = _sorted(users.cast(USERS_SCHEMA), [("user_id", "ascending", "at_end")])
         if self.prev is not None and self.people is not None:
-            fp_parts.append(aged(_without(pq.read_table(self.prev / "footprints.parquet"), self.people)))
-            us_parts.append(_without(pq.read_table(self.prev / "users.parquet"), self.people))
-        fp = _sorted(pa.concat_tables([p.cast(FOOTPRINTS_SCHEMA) for p in fp_parts]), FOOTPRINT_SORT)
-        us = _sorted(pa.concat_tables(us_parts), [("user_id", "ascending", "at_end")])
+            kept = aged(_without(pq.read_table(self.prev / "footprints.parquet"), self.people))
+            fp = merge_by_user(kept.cast(FOOTPRINTS_SCHEMA), fp)
+            us = merge_by_user(_without(pq.read_table(self.prev / "users.parquet"), self.people).cast(USERS_SCHEMA), us)
         write_table(fp, self.gen / "footprints.parquet", "write_footprints")
         failpoints.hit("mid_footprints_write")
         write_table(us, self.gen / "users.parquet", "write_footprints")
         self.footprints, self.people = fp, us
+
+
+def merge_by_user(a: pa.Table, b: pa.Table) -> pa.Table:
+    """Two tables sorted by user_id (then their other keys), with no user in both, merged into one
+    sorted table: each row keeps its place among its own user's rows."""
+    import numpy as np
+    both = pa.concat_tables([a, b])
+    users = both.column("user_id")
+    distinct = pc.unique(users)
+    rank = pc.index_in(users, value_set=distinct.take(pc.sort_indices(distinct)))  # position in id order
+    take = np.argsort(rank.to_numpy(zero_copy_only=False), kind="stable")
+    return both.take(pa.array(take))
 
 
 def age_footprints(table: pa.Table, watermark_us: int, min_support: int, memory_us: int | None) -> pa.Table:

@@ -62,27 +62,23 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
     previous = read_manifest(root, current_name(root), any_format=True) if (root / "CURRENT").exists() else None
     layered = changed_users is not None and _layerable(previous, shards, taxonomy, cfg)
     only = pa.array([str(u) for u in changed_users], pa.string()) if layered else None
-    footprints = _frame(footprints, only)
-    history = None if history is None else _frame(history, only)
+    fp = _arrow(footprints, only)
     missing = [c for c in ("user_id", "level", "topic_id", "interactions", "known", "history_len",
-                           "recent_us", "last_ts") if c not in footprints.columns]
+                           "recent_us", "last_ts") if c not in fp.column_names]
     if missing:
         raise InputError(f"missing column(s) {missing}: publish a table from labeler.build_footprints "
                          "or a LabelRun.", source="footprints", column=missing[0])
     (root / "snapshots").mkdir(parents=True, exist_ok=True)
     gone = tombstones(root)
-    fp = footprints.copy()
-    if gone:
-        fp = fp[~fp["user_id"].map(user_digest).isin(gone)]
-    users = fp.groupby("user_id", sort=True)["history_len"].max().rename("history_len").reset_index()
+    fp = _without_tombstoned(fp, gone)
+    users = fp.group_by("user_id").aggregate([("history_len", "max")]).rename_columns(["user_id", "history_len"])
+    users = users.select(["user_id", "history_len"]).cast(pa.schema([("user_id", pa.string()), ("history_len", pa.int64())]))
     if history is not None:
-        have = pa.array(users["user_id"].astype(str), pa.string())
-        ids = pa.array(history["user_id"].astype(str), pa.string())
-        extra = history[~pc.is_in(ids, value_set=have).to_numpy(zero_copy_only=False)]
-        if gone:
-            extra = extra[~extra["user_id"].map(user_digest).isin(gone)]
-        users = pd.concat([users, extra[["user_id", "history_len"]]], ignore_index=True)
-    watermark = to_us(as_of) if as_of is not None else to_us(fp["last_ts"].max()) if len(fp) else None
+        h = _without_tombstoned(_arrow(history, only), gone).select(["user_id", "history_len"])
+        h = h.cast(users.schema)
+        users = pa.concat_tables([users, h.filter(pc.invert(pc.is_in(h.column("user_id"), value_set=users.column("user_id"))))])
+    last = pc.max(fp.column("last_ts")).as_py() if fp.num_rows else None
+    watermark = to_us(as_of) if as_of is not None else to_us(last) if last is not None else None
 
     seq = (previous["sequence"] + 1) if previous else 1
     name = f"snap-{seq:06d}-{uuid.uuid4().hex[:8]}"
@@ -90,6 +86,7 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
     tmp.mkdir()
     items_digest = _items(tmp / "items.sqlite", taxonomy, previous, root)
     topics, people = _shard_rows(fp, users)
+    n_users, n_rows = people.num_rows, topics.num_rows
     pieces = _by_shard(topics, people, shards)
     if layered:
         plan = _plan_layers(root / "snapshots" / previous["name"], previous, tmp, seq, pieces, compact_share,
@@ -112,7 +109,7 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
                 "taxonomy_version": taxonomy.version, "config": json.loads(cfg.canonical_json()),
                 "items_digest": items_digest, "n_shards": shards, "shards": shard_info, "deltas": deltas,
                 "users": (previous["users"] + sum(v["new_users"] for v in shard_info.values())) if layered
-                else int(len(users)),
+                else n_users,
                 "publish": "changed users as delta layers" if layered else "full",
                 "rewritten_shards": rewritten}
     (tmp / "manifest.json").write_text(json.dumps(manifest, indent=2, sort_keys=True) + "\n")
@@ -131,19 +128,27 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
     fsync_dir(root)
     clean(root, keep=retain)
     log.info("published store snapshot %s (%s): %d users and %d footprint rows written to %d files", name,
-             manifest["publish"], len(users), len(fp), len(rewritten))
+             manifest["publish"], n_users, n_rows, len(rewritten))
     return name
 
 
-def _frame(table, only: pa.Array | None) -> pd.DataFrame:
-    """A pandas frame of an Arrow table or a frame, cut to the users ``only`` when given."""
-    if isinstance(table, pa.Table):
-        if only is not None:
-            table = table.filter(pc.is_in(table.column("user_id"), value_set=only))
-        return table.to_pandas()
+def _arrow(table, only: pa.Array | None) -> pa.Table:
+    """An Arrow table of an Arrow table or a pandas frame, cut to the users ``only`` when given."""
+    if not isinstance(table, pa.Table):
+        table = pa.Table.from_pandas(table, preserve_index=False)
+    table = table.set_column(table.schema.get_field_index("user_id"), "user_id",
+                             pc.cast(table.column("user_id"), pa.string()))
     if only is not None:
-        return table[table["user_id"].astype(str).isin(set(only.to_pylist()))]
+        table = table.filter(pc.is_in(table.column("user_id"), value_set=only))
     return table
+
+
+def _without_tombstoned(table: pa.Table, gone: set[str]) -> pa.Table:
+    if not gone or table.num_rows == 0:
+        return table
+    ids = pc.unique(table.column("user_id"))
+    erased = pa.array([u for u in ids.to_pylist() if user_digest(u) in gone], pa.string())
+    return table.filter(pc.invert(pc.is_in(table.column("user_id"), value_set=erased)))
 
 
 def _layerable(previous: dict | None, shards: int, taxonomy, cfg: LabelConfig) -> bool:
@@ -261,10 +266,13 @@ TOPIC_COLUMNS = ("user_id", "level", "topic_id", "interactions", "engaged_intera
                  "last_us", "known_since_us", "recent", "history_len")
 
 
-def _us(values) -> pa.Array:
-    """Timestamps as int64 microseconds (null stays null)."""
-    ts = pd.to_datetime(pd.Series(values), utc=True).astype("datetime64[us, UTC]")
-    return pa.array(ts).cast(pa.int64())
+def _us(column, n: int) -> pa.Array:
+    """Timestamps as int64 microseconds (null stays null); a missing column is all null."""
+    if column is None or pa.types.is_null(column.type):
+        return pa.nulls(n, pa.int64())
+    if not pa.types.is_timestamp(column.type):
+        column = pa.array(pd.to_datetime(pd.Series(column.to_pandas()), utc=True).astype("datetime64[us, UTC]"))
+    return pc.cast(pc.cast(column, pa.timestamp("us", tz="UTC"), safe=False), pa.int64())
 
 
 def _recent_text(values) -> pa.Array:
@@ -274,23 +282,23 @@ def _recent_text(values) -> pa.Array:
     return pc.binary_join_element_wise("[", pc.fill_null(text, ""), "]", "")
 
 
-def _shard_rows(fp: pd.DataFrame, users: pd.DataFrame) -> tuple[pa.Table, pa.Table]:
+def _shard_rows(fp: pa.Table, users: pa.Table) -> tuple[pa.Table, pa.Table]:
     """(topic rows, users) as Arrow tables in the shards' column layout, sorted by their keys."""
-    people = pa.table({"user_id": pa.array(users["user_id"].astype(str), pa.string()),
-                       "history_len": pa.array(users["history_len"].fillna(0).astype("int64"), pa.int64())})
+    people = pa.table({"user_id": users.column("user_id"),
+                       "history_len": pc.fill_null(pc.cast(users.column("history_len"), pa.int64()), 0)})
     people = people.take(pc.sort_indices(people, [("user_id", "ascending")]))
-    user_id = pa.array(fp["user_id"].astype(str), pa.string())
-    n = len(fp)
-    none = pd.Series([None] * n, dtype="datetime64[us, UTC]")
+    n = fp.num_rows
+    col = lambda name: fp.column(name) if name in fp.column_names else None  # noqa: E731
+    user_id = fp.column("user_id")
     topics = pa.table({
-        "user_id": user_id, "level": pa.array(fp["level"].astype("int64"), pa.int64()),
-        "topic_id": pa.array(fp["topic_id"].astype(str), pa.string()),
-        "interactions": pa.array(fp["interactions"].astype("int64"), pa.int64()),
-        "engaged_interactions": pa.array(fp.get("engaged_interactions", fp["interactions"]).astype("int64"), pa.int64()),
-        "known": pa.array(fp["known"].astype(bool).astype("int64"), pa.int64()),
-        "first_us": _us(fp.get("first_ts", fp["last_ts"])), "last_us": _us(fp["last_ts"]),
-        "known_since_us": _us(fp["known_since"] if "known_since" in fp.columns else none),
-        "recent": _recent_text(fp["recent_us"]),
+        "user_id": user_id, "level": pc.cast(fp.column("level"), pa.int64()),
+        "topic_id": pc.cast(fp.column("topic_id"), pa.string()),
+        "interactions": pc.cast(fp.column("interactions"), pa.int64()),
+        "engaged_interactions": pc.cast(col("engaged_interactions") or fp.column("interactions"), pa.int64()),
+        "known": pc.cast(pc.cast(fp.column("known"), pa.bool_()), pa.int64()),
+        "first_us": _us(col("first_ts") or fp.column("last_ts"), n), "last_us": _us(fp.column("last_ts"), n),
+        "known_since_us": _us(col("known_since"), n),
+        "recent": _recent_text(pc.cast(fp.column("recent_us"), pa.list_(pa.int64()))),
         "history_len": people.column("history_len").take(pc.index_in(user_id, value_set=people.column("user_id")))})
     topics = topics.take(pc.sort_indices(topics, [("user_id", "ascending"), ("level", "ascending"),
                                                   ("topic_id", "ascending")]))
