@@ -83,7 +83,8 @@ def figures(ev) -> dict:
 
 def render(ev) -> str:
     from .report import esc, image, table
-    figs = figures(ev)
+    with report.plain_text():  # names from the inputs are text, not math markup
+        figs = figures(ev)
     pngs = {k: report.figure_png(f) for k, f in figs.items()}
     for f in figs.values():
         report.close(f)

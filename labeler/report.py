@@ -27,6 +27,13 @@ def new_figure(width: float, height: float):
     return fig
 
 
+def plain_text():
+    """A matplotlib context in which text is drawn as given: a topic or group name such as
+    '$\\notacommand{x}$' is text, never math markup (user metadata must not break a report)."""
+    import matplotlib
+    return matplotlib.rc_context({"text.parse_math": False})
+
+
 def close(fig) -> None:
     import matplotlib.pyplot as plt
     plt.close(fig)

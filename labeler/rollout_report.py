@@ -149,7 +149,8 @@ def render(result) -> str:
     """report.html of a rollout check, with its figures embedded."""
     from .report import esc, image, table
     s = result.summary
-    figs = figures(result)
+    with report.plain_text():  # names from the inputs are text, not math markup
+        figs = figures(result)
     pngs = {k: report.figure_png(f) for k, f in figs.items()}
     for f in figs.values():
         report.close(f)

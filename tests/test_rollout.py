@@ -285,3 +285,21 @@ def test_reordered_keywords_are_not_a_rename():
     m = topic_map(tax("sourdough / starter / bread", "yarn / wool"), tax("Starter / bread / sourdough", "yarn / felt"), 0)
     status = m[m["side"] == "current"].set_index("topic_id")["status"].to_dict()
     assert status == {"t1": "kept", "t2": "renamed"}
+
+
+def test_names_with_math_markup_do_not_break_the_report(cli, fixtures, tmp_path):
+    """Category names like '$\\notacommand{x}$' (matplotlib would read them as math markup) are drawn
+    as plain text: rollout-check writes its report and exits by the gate, not with a crash."""
+    items = pd.read_csv(fixtures / "items.csv")
+    cats = sorted(items["category"].dropna().unique())
+    odd = items.assign(category=items["category"].replace({cats[0]: r"$\notacommand{x}$", cats[1]: "$$ 50% off $"}))
+    odd.to_csv(tmp_path / "odd.csv", index=False)
+    for name, path in (("cur", fixtures / "items.csv"), ("cand", tmp_path / "odd.csv")):
+        code, _, err = cli("taxonomy", "build", "--items", path, "--out", tmp_path / name, "--from-categories",
+                           "category", "-q")
+        assert code == 0, err
+    code, out, err = cli("rollout-check", "--current", tmp_path / "cur", "--candidate", tmp_path / "cand",
+                         "--interactions", fixtures / "interactions.csv", "--out", tmp_path / "check", "-q")
+    assert code in (0, 1), err
+    html = (tmp_path / "check" / "report.html").read_text()
+    assert "notacommand" in html
