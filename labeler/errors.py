@@ -61,3 +61,24 @@ class LockedError(LabelerError):
     """Another run holds the lock."""
 
     exit_code = 3
+
+
+def environment_error(exc: BaseException) -> "EngineError | None":
+    """A clear error for a fault of the machine (a full disk, a read-only or forbidden folder), or
+    None if ``exc`` is not one. Writers here write to temporary names and rename last, so such a
+    fault leaves the previous outputs in force."""
+    import errno
+    import sqlite3
+    if isinstance(exc, sqlite3.OperationalError) and "full" in str(exc).lower():
+        return EngineError(f"disk full while writing the store ({exc}). Nothing was published: the previous "
+                           "snapshot is still served. Free space and run again.")
+    if isinstance(exc, OSError) and exc.errno in (errno.ENOSPC, errno.EDQUOT):
+        return EngineError(f"disk full while writing {exc.filename or 'an output'} ({exc.strerror}). Nothing was "
+                           "committed: the previous outputs are intact. Free space and run again.")
+    if isinstance(exc, OSError) and exc.errno in (errno.EROFS, errno.EACCES, errno.EPERM):
+        return EngineError(f"cannot write {exc.filename or 'an output'} ({exc.strerror}). Nothing was committed. "
+                           "Point the output at a folder you can write to, or fix its permissions.")
+    if isinstance(exc, sqlite3.OperationalError) and ("readonly" in str(exc).lower() or "unable to open" in str(exc)):
+        return EngineError(f"cannot write the store ({exc}). Nothing was published. Check the store folder's "
+                           "permissions and free space.")
+    return None

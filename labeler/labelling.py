@@ -265,6 +265,29 @@ class LabelRun:
         limit = getattr(self.engine.config, "bucket_rows", None)
         pieces = limit is not None and self.intake.rows_in > limit and self.carried is None \
             and self.taxonomy is not None and not hasattr(self.engine, "write_partitioned")
+        try:
+            n, fp_rows, summary, history = self._write_to(tmp, limit, pieces, progress)
+            summary["outputs"].update(labels_rows=n, footprints_rows=fp_rows)
+            (tmp / "summary.json").write_text(json.dumps(summary, indent=2, sort_keys=True) + "\n")
+        except BaseException:
+            shutil.rmtree(tmp, ignore_errors=True)  # a failed write leaves nothing half-written behind
+            raise
+        for name in ("labels", "footprints.parquet", "summary.json"):  # summary.json goes last
+            dest = out / name
+            if dest.exists():
+                trash = out / f".old-{uuid.uuid4().hex}"
+                os.replace(dest, trash)
+                shutil.rmtree(trash, ignore_errors=True) if trash.is_dir() else trash.unlink()
+            os.replace(tmp / name, dest)
+        shutil.rmtree(tmp, ignore_errors=True)
+        if pieces:
+            self.written = {"footprints": out / "footprints.parquet", "history": history[0], "as_of_us": history[1]}
+        log.info("wrote %d label rows and %d footprint rows to %s", n, fp_rows, out)
+        return summary
+
+    def _write_to(self, tmp: Path, limit, pieces: bool, progress: bool):
+        """Labels and footprints into ``tmp``: (label rows, footprint rows, summary, history)."""
+        history = None
         if pieces:
             n, fp_rows, summary, history = _write_in_pieces(self, tmp, limit, progress)
         else:
@@ -281,20 +304,7 @@ class LabelRun:
             fp_rows = fp.num_rows
             summary = self.summary()
             summary["outputs"] = {"labels_content_hash": self.content_hash()}
-        summary["outputs"].update(labels_rows=n, footprints_rows=fp_rows)
-        (tmp / "summary.json").write_text(json.dumps(summary, indent=2, sort_keys=True) + "\n")
-        for name in ("labels", "footprints.parquet", "summary.json"):  # summary.json goes last
-            dest = out / name
-            if dest.exists():
-                trash = out / f".old-{uuid.uuid4().hex}"
-                os.replace(dest, trash)
-                shutil.rmtree(trash, ignore_errors=True) if trash.is_dir() else trash.unlink()
-            os.replace(tmp / name, dest)
-        shutil.rmtree(tmp, ignore_errors=True)
-        if pieces:
-            self.written = {"footprints": out / "footprints.parquet", "history": history[0], "as_of_us": history[1]}
-        log.info("wrote %d label rows and %d footprint rows to %s", n, fp_rows, out)
-        return summary
+        return n, fp_rows, summary, history
 
 
 def user_ranges(counts: pa.Table, limit: int) -> list[tuple[str | None, str | None]]:

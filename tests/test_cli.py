@@ -151,3 +151,46 @@ def test_json_log_times_carry_their_zone():
     from labeler.cli._run import _JsonLines
     line = _JsonLines().format(logging.LogRecord("labeler", logging.INFO, __file__, 1, "hello", None, None))
     assert json.loads(line)["time"].endswith("+00:00")
+
+
+def _labelled(cli, fixtures, tmp_path):
+    cli("taxonomy", "build", "--items", fixtures / "items.csv", "--out", tmp_path / "tax", "--from-categories",
+        "category", "-q")
+    code, _, err = cli("label", "--taxonomy", tmp_path / "tax", "--interactions", fixtures / "interactions.csv",
+                       "--out", tmp_path / "out", "--store", tmp_path / "store", "-q")
+    assert code == 0, err
+
+
+def test_disk_full_under_label_out_is_a_clean_error(cli, fixtures, tmp_path, monkeypatch):
+    """A full disk while `labeler label` writes: exit 1, 'disk full', no traceback, outputs as before."""
+    import errno
+    import pyarrow.parquet as pq
+    _labelled(cli, fixtures, tmp_path)
+    before = {p.name: p.read_bytes() for p in (tmp_path / "out").iterdir() if p.is_file()}
+
+    def full(*a, **k):
+        raise OSError(errno.ENOSPC, "No space left on device", str(tmp_path / "out" / "x"))
+    monkeypatch.setattr(pq, "write_table", full)
+    code, _, err = cli("label", "--taxonomy", tmp_path / "tax", "--interactions", fixtures / "interactions.csv",
+                       "--out", tmp_path / "out", "-q")
+    assert code == 1 and "disk full" in err and "Traceback" not in err, err
+    assert {p.name: p.read_bytes() for p in (tmp_path / "out").iterdir() if p.is_file()} == before
+    assert not list((tmp_path / "out").glob(".tmp-*"))  # nothing half-written left behind
+
+
+def test_disk_full_during_the_store_publish_keeps_the_snapshot(cli, fixtures, tmp_path, monkeypatch):
+    """SQLite's 'database or disk is full' during a publish: exit 1, the previous snapshot still served."""
+    import sqlite3
+    import labeler.store.publish as publish
+    _labelled(cli, fixtures, tmp_path)
+    current = (tmp_path / "store" / "CURRENT").read_text()
+
+    def full(*a, **k):
+        raise sqlite3.OperationalError("database or disk is full")
+    monkeypatch.setattr(publish, "_write_shard", full)
+    import pandas as pd
+    pd.read_csv(fixtures / "interactions.csv").iloc[1:].to_csv(tmp_path / "fewer.csv", index=False)  # shards change
+    code, _, err = cli("label", "--taxonomy", tmp_path / "tax", "--interactions", tmp_path / "fewer.csv",
+                       "--out", tmp_path / "out2", "--store", tmp_path / "store", "-q")
+    assert code == 1 and "disk full while writing the store" in err and "Traceback" not in err, err
+    assert (tmp_path / "store" / "CURRENT").read_text() == current

@@ -501,6 +501,20 @@ def test_cli_run_prints_a_summary_and_logs_json_lines(tmp_path, scenario, cli):
     assert lines and all({"time", "level", "logger", "message"} <= set(r) for r in lines)
 
 
+def test_a_damaged_lock_file_is_taken_over_and_a_folder_is_refused(tmp_path, scenario, cli):
+    """A lock file holding random bytes is an unknown dead holder (taken over); a folder in its place
+    is refused with exit 2 and a message saying to remove it."""
+    root, _ = setup_root(tmp_path, scenario, 5)
+    (root / "work").mkdir()
+    (root / "work" / "run.lock").write_bytes(bytes(range(256)) * 4)
+    code, _, err = cli("run", "--config", _toml(root), "-q")
+    assert code == 0, err
+    (root / "work" / "run.lock").unlink()
+    (root / "work" / "run.lock").mkdir()
+    code, _, err = cli("run", "--config", _toml(root), "-q")
+    assert code == 2 and "it is a folder" in err and "Remove" in err and "Traceback" not in err, err
+
+
 def test_cli_run_needs_a_config(cli):
     code, _, err = cli("run")
     assert code == 2 and "--config" in err

@@ -46,7 +46,8 @@ def main(argv: list[str] | None = None) -> int:
         return exc.exit_code
     except Exception as exc:  # an engine's own failure becomes a clear message; anything else is a bug
         from ..engines import engine_error
-        err = engine_error(exc)
+        from ..errors import environment_error
+        err = engine_error(exc) or environment_error(exc)
         if err is None:
             raise
         print(f"labeler {args.verb}: error: {err}", file=sys.stderr)

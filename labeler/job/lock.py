@@ -15,7 +15,7 @@ import os
 import socket
 from pathlib import Path
 
-from ..errors import LockedError
+from ..errors import ArtifactError, LockedError
 
 log = logging.getLogger(__name__)
 
@@ -30,7 +30,12 @@ class RunLock:
 
     def __enter__(self) -> "RunLock":
         self.path.parent.mkdir(parents=True, exist_ok=True)
-        fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
+        try:
+            fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
+        except OSError as exc:
+            raise ArtifactError(f"{self.path}: the lock file cannot be opened ({exc.strerror}"
+                                f"{': it is a folder' if self.path.is_dir() else ''}). Nothing was done. Remove "
+                                "it (no run is using a lock that cannot be opened) and run again.") from None
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except BlockingIOError:
@@ -62,8 +67,11 @@ class RunLock:
 
 
 def _read(fd: int) -> dict:
+    """The holder's record; an unreadable record (damaged, random bytes) is an unknown holder."""
+    unknown = {"pid": "?", "host": "?", "started": "?"}
     try:
         raw = os.pread(fd, 4096, 0)
-        return json.loads(raw) if raw.strip() else {}
-    except (OSError, json.JSONDecodeError):
-        return {"pid": "?", "host": "?", "started": "?"}
+        record = json.loads(raw) if raw.strip() else {}
+    except (OSError, ValueError):  # ValueError: not JSON, or not UTF-8
+        return unknown
+    return record if isinstance(record, dict) else unknown
