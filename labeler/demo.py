@@ -299,7 +299,7 @@ def _run_job_twice(out, paths, scenario, label_cfg, embedder, progress, labels) 
     b = labels[cols].sort_values(keys, na_position="last").reset_index(drop=True).astype(object)
     same = len(a) == len(b) and bool((a.fillna("-") == b.fillna("-")).all().all())
     return {"work_dir": str(out / "job"), "runs": [
-        {k: m.get(k) for k in ("run", "mode", "why", "relabelled_users", "relabelled_from",
+        {k: m.get(k) for k in ("run", "mode", "why", "relabelled_users", "continued_users", "relabelled_from",
                                "label_rows_written", "dates_linked", "durations_s")} for m in (first, second)],
         "labels_equal_batch_labels": same}
 
@@ -317,6 +317,8 @@ def _evaluate_policies(out, scenario, tax, label_cfg, embedder) -> dict:
     history = ev[ev["ts"] < at]
     users = sorted(set(history["user_id"]) & set(ev.loc[ev["ts"] >= at, "user_id"]))
     recs = recommend(history, tax, users, at, k=10)
+    recs_path = out / "data" / "recs.parquet"  # so `labeler evaluate --recs` can be tried on the same lists
+    recs.to_parquet(recs_path, index=False)
     vectors = item_vectors(scenario.items, tax, embedder=embedder)
     res = evaluate(recs, ev, tax, k=10, group_by="policy", control="popularity", horizon_days=14,
                    label_config=label_cfg.model_copy(update={"label_from": None}), item_vectors=vectors,
@@ -326,7 +328,8 @@ def _evaluate_policies(out, scenario, tax, label_cfg, embedder) -> dict:
     policies = {g: {m: round(v[m]["mean"], 4) for m in shown} for g, v in res.summary["groups"].items()}
     un = {g: v["unexpectedness"] for g, v in policies.items()}
     growth = res.summary.get("growth", {}).get("last_week", {})
-    return {"dir": str(out / "evaluation"), "request_time": at.isoformat(), "lists": res.summary["lists"],
+    return {"dir": str(out / "evaluation"), "recs": str(recs_path), "request_time": at.isoformat(),
+            "lists": res.summary["lists"],
             "policies": policies,
             # in_profile never leaves the known topics, explore_mix does by design; popular items are
             # the least novel by the definition of novelty

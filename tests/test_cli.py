@@ -112,6 +112,11 @@ def test_demo_small_runs_every_stage(cli, tmp_path):
     assert set(evaluation["policies"]) == {"popularity", "in_profile", "explore_mix"}
     assert evaluation["expected_order_holds"] is True
     assert (tmp_path / "d" / "evaluation" / "report.html").exists()
+    line = next(x for x in out.splitlines() if "try it: labeler evaluate" in x)  # the printed command runs
+    args = line.split("try it: labeler ", 1)[1].split()
+    code, _, err = cli(*args)
+    assert code == 0, err
+    assert (tmp_path / "d" / "evaluation-cli" / "report.html").exists()
 
 
 def test_readme_configuration_example_is_a_valid_job_file():

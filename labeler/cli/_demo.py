@@ -42,8 +42,9 @@ def run(args) -> int:
     job = s["job"]
     r1, r2 = job["runs"]
     print(f"scheduled job -> {job['work_dir']}: {r1['run']} {r1['mode']} ({r1['label_rows_written']} rows), then "
-          f"{r2['run']} {r2['mode']}: re-labelled {r2['relabelled_users']} users from {r2['relabelled_from']}, "
-          f"{r2['dates_linked']} dates kept as they were; labels equal the batch labels: "
+          f"{r2['run']} {r2['mode']}: {r2['continued_users']} users continued from the carried state, "
+          f"{r2['relabelled_users']} re-labelled over their history, {r2['dates_linked']} dates kept as they were; "
+          f"labels equal the batch labels: "
           f"{'yes' if job['labels_equal_batch_labels'] else 'NO'}")
     print("  next: `labeler run --config fixtures/demo-job.toml` runs the same job from a TOML file")
     e = s["evaluation"]
@@ -54,6 +55,9 @@ def run(args) -> int:
               f"unexpectedness {m['unexpectedness']:.2f}  serendipity {m['serendipity']:.3f}")
     print("  expected order (unexpectedness: in_profile 0 < explore_mix; novelty: popularity lowest): "
           + ("holds" if e["expected_order_holds"] else "DOES NOT HOLD"))
+    print(f"  try it: labeler evaluate --recs {e['recs']} --interactions {s['data']['interactions']} "
+          f"--taxonomy {s['taxonomy']['dir']} --k 10 --group-by policy --control popularity "
+          f"--horizon-days 14 --out {args.out}/evaluation-cli")
     for arm, m in sorted(e["arms_last_week"].items()):
         print(f"  arm {arm:<14} last week: {m['known_topics_per_user']:.2f} known topics per user, "
               f"{m['new_interest_per_active_user']:.2f} new interests per active user")

@@ -45,8 +45,9 @@ def run(args) -> int:
     m = result.manifest
     print(f"run {m['run']}: {m['status']} ({m['mode']}: {m['why']})")
     if m["status"] == "committed":
-        print(f"  watermark {m['watermark']}; re-labelled {m['relabelled_users']} users from "
-              f"{m['relabelled_from']}; {m['label_rows_written']} label rows written, "
+        print(f"  watermark {m['watermark']}; {m.get('continued_users', 0)} users continued from the carried "
+              f"state, {m['relabelled_users']} re-labelled over their history from {m['relabelled_from']}; "
+              f"{m['label_rows_written']} label rows written, "
               f"{len(m['dates_rewritten'])} dates rewritten, {m['dates_linked']} kept")
         print(f"  outputs: {cfg.work_dir}/outputs/{m['generation']}/ ; store snapshot {m['store']['snapshot']}")
     for name, err in m["rejected"].items():
