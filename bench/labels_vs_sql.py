@@ -62,14 +62,21 @@ FROM s LEFT JOIN kt ON kt.user_id = s.user_id AND kt.t = s.t AND kt.is_point
 """
 
 
-def synthesize(path: Path, rows: int, users: int, topics: int = 300, items: int = 100_000, seed: int = 0):
+def synthesize(path: Path, rows: int, users: int, topics: int = 300, items: int = 100_000, seed: int = 0,
+               activity: str = "zipf"):
+    """A synthetic log. ``activity``: "zipf" (a few extremely heavy users: one holds about a quarter of
+    all events) or "lognormal" (realistic: the heaviest user holds well under 1%)."""
     rng = np.random.default_rng(seed)
+    weights = None
+    if activity == "lognormal":
+        weights = rng.lognormal(0.0, 1.5, users)
+        weights /= weights.sum()
     start = pd.Timestamp("2026-01-01T00:00:00Z").value // 1000
     writer = None
     chunk = 2_000_000
     for off in range(0, rows, chunk):
         n = min(chunk, rows - off)
-        u = rng.zipf(1.3, n) % users  # a few very heavy users, many light ones
+        u = rng.zipf(1.3, n) % users if weights is None else rng.choice(users, size=n, p=weights)
         t = pa.table({
             "user_id": pa.array([f"u{x:07d}" for x in u]),
             "item_id": pa.array([f"i{x:06d}" for x in rng.integers(0, items, n)]),
