@@ -57,6 +57,19 @@ def assert_same_outputs(a: Path, b: Path) -> None:
     assert not differ, f"files differ: {differ[:5]}"
 
 
+def store_files(work: Path) -> dict[str, bytes]:
+    """Every file of the job's lookup store, with each manifest's publish time left out (it records
+    when, which a re-run cannot repeat)."""
+    out = {}
+    for p in sorted((work / "store").rglob("*")):
+        if p.is_file() and not p.name.startswith(".CURRENT"):
+            data = p.read_bytes()
+            if p.name == "manifest.json":
+                data = json.dumps({k: v for k, v in json.loads(data).items() if k != "created"}).encode()
+            out[str(p.relative_to(work))] = data
+    return out
+
+
 def setup_root(tmp_path: Path, scenario, upto: int) -> tuple[Path, list[str]]:
     items, ev = scenario
     items.to_parquet(tmp_path / "items.parquet", index=False)
@@ -450,7 +463,8 @@ def crash_reference(tmp_path_factory, scenario):
 
 @pytest.mark.parametrize("point", FAILPOINTS)
 def test_killed_at_any_point_a_rerun_gives_the_clean_outputs(tmp_path, scenario, crash_reference, point):
-    """SIGKILL at each failpoint of the second run; re-running gives the clean run's bytes."""
+    """SIGKILL at each failpoint of the second run; re-running gives the clean run's bytes: outputs,
+    and every file of the lookup store, manifests included (but for their publish time)."""
     ref, dates = crash_reference
     root, _ = setup_root(tmp_path, scenario, 25)
     toml = _toml(root)
@@ -461,8 +475,9 @@ def test_killed_at_any_point_a_rerun_gives_the_clean_outputs(tmp_path, scenario,
     again = _run_cli(toml)
     assert again.returncode == 0, again.stderr[-2000:]
     assert_same_outputs(root / "work", ref / "work")
+    assert store_files(root / "work") == store_files(ref / "work")  # manifests included, but for `created`
     state, ref_state = load_state(root / "work"), load_state(ref / "work")
-    for key in ("watermark", "partitions", "register", "taxonomy", "generation"):
+    for key in ("watermark", "partitions", "register", "taxonomy", "generation", "store_snapshot"):
         if key == "partitions":
             assert {k: {**v, "files": None} for k, v in state[key].items()} == \
                 {k: {**v, "files": None} for k, v in ref_state[key].items()}
@@ -488,6 +503,9 @@ def test_disk_full_leaves_the_previous_state_intact(tmp_path, scenario, monkeypa
         assert (root / "work" / "store" / "CURRENT").read_bytes() == store_current
     monkeypatch.delenv("LABELER_FAILPOINT")
     assert run_job(cfg).manifest["status"] == "committed"
+    store = root / "work" / "store"
+    current = json.loads((store / "snapshots" / (store / "CURRENT").read_text().strip() / "manifest.json").read_text())
+    assert current["sequence"] == 2  # a publish done before the failed state write is not redone
     run_job(make_config(root, work="full"))
     assert_same_outputs(root / "work", root / "full")
 

@@ -171,6 +171,49 @@ def test_missing_or_damaged_store_is_a_clear_error(tmp_path):
         open_store(tmp_path / "store")
 
 
+def _damage(path, how: str) -> None:
+    data = bytearray(path.read_bytes())
+    if how == "flip":
+        data[len(data) // 2] ^= 0x01
+    else:
+        data = data[: len(data) // 3]
+    path.write_bytes(bytes(data))
+
+
+@pytest.mark.parametrize("how", ["flip", "truncate"])
+@pytest.mark.parametrize("target", ["shard", "items"])
+def test_a_damaged_file_is_refused_not_served(tmp_path, cli, how, target):
+    """A shard or item table with one flipped bit, or cut short, is refused against the size and
+    SHA-256 recorded at publish (never served, never a traceback): the library raises
+    ArtifactError naming the file, `labeler lookup` exits 2 with the same message."""
+    from labeler.store import shard_of
+    name = _publish(tmp_path, shards=4)
+    fname = f"users-{shard_of('ana', 4):02d}.sqlite" if target == "shard" else "items.sqlite"
+    _damage(tmp_path / "store" / "snapshots" / name / fname, how)
+    what = "checksum differs" if how == "flip" else "truncated"
+    with pytest.raises(ArtifactError, match=f"{fname}.*{what}"):
+        store = open_store(tmp_path / "store")
+        store.footprint("ana")
+        store.classify("ana", ["k1"])
+    code, out, err = cli("lookup", "--store", tmp_path / "store", "ana", "--item", "k1")
+    assert code == 2 and fname in err and what in err and "Traceback" not in err, err
+
+
+def test_checksums_cover_every_file_and_linked_files_keep_theirs(tmp_path):
+    """The manifest records size and SHA-256 of each file; a later publish that links a file
+    unchanged copies its record instead of reading it again, and the records match the bytes."""
+    from labeler.store.layout import file_record
+    first = _publish(tmp_path, shards=4)
+    second = _publish(tmp_path, frame=pd.concat([LOG, log(("cy", "b1", 20))]), shards=4)
+    folder = tmp_path / "store" / "snapshots" / second
+    m = json.loads((folder / "manifest.json").read_text())
+    assert sorted(m["files"]) == sorted(p.name for p in folder.iterdir() if p.name != "manifest.json")
+    assert all(file_record(folder / f) == rec for f, rec in m["files"].items())
+    old = json.loads((tmp_path / "store" / "snapshots" / first / "manifest.json").read_text())
+    linked = [f for f in m["files"] if f not in m["rewritten_shards"] and f != "items.sqlite"]
+    assert linked and all(m["files"][f] == old["files"][f] for f in linked)
+
+
 def test_snapshot_of_an_older_format_is_refused_and_replaced_by_the_next_publish(tmp_path):
     """A reader refuses a snapshot written in an older store format; the next publish writes every shard anew."""
     name = _publish(tmp_path, shards=4)

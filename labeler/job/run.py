@@ -202,10 +202,19 @@ class _Run:
 
         t0 = time.perf_counter()
         from ..store import publish_store
+        # what this publish holds follows from these alone, so a re-run after a crash that came after
+        # the publish finds it already done and leaves the store as a clean run would
+        content_key = hashlib.sha256(json.dumps(
+            {"after": state and state.get("store_snapshot"), "mode": mode, "generation": gen_name,
+             "partitions": {n: {k: v for k, v in p.to_json().items() if k != "files"}  # content, not paths
+                            for n, p in sorted(parts.items())}, "taxonomy": tax.version,
+             "register": self.register_rel, "labels": json.loads(lab.canonical_json()),
+             "shards": cfg.run.store_shards, "tool": __version__}, sort_keys=True, default=str).encode()).hexdigest()
         snapshot = publish_store(work / "store", writer.footprints, view, lab, history=writer.people,
                                  as_of=pd.Timestamp(watermark_us, unit="us", tz="UTC"),
                                  shards=cfg.run.store_shards, retain=cfg.run.keep_generations,
-                                 changed_users=None if people is None else people.to_pylist())
+                                 changed_users=None if people is None else people.to_pylist(),
+                                 content_key=content_key)
         self._timed("store", t0)
         failpoints.hit("after_store")
 

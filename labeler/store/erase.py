@@ -68,7 +68,7 @@ def forget_users(path, user_ids: Iterable[str], outputs: Iterable = ()) -> Erasu
         return Erasure((), missing, None)
     frames, users = [], []
     for shard in store.manifest["shards"]:
-        f, u = merge_layers([read_shard(store._folder / f) for f in shard_files(store.manifest, shard)])
+        f, u = merge_layers([read_shard(store.path(f)) for f in shard_files(store.manifest, shard)])
         frames.append(f)
         users.append(u)
     fp = pd.concat(frames, ignore_index=True)

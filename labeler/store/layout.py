@@ -5,6 +5,7 @@ import hashlib
 import json
 import os
 import shutil
+import threading
 from pathlib import Path
 
 import numpy as np
@@ -12,7 +13,8 @@ import pandas as pd
 
 from ..errors import ArtifactError
 
-FORMAT = "labeler-store/3"  # 2: 16 KiB pages, history_len on every topic row; 3: delta layers per shard
+FORMAT = "labeler-store/4"  # 2: 16 KiB pages, history_len on every topic row; 3: delta layers per shard;
+#                             4: size and SHA-256 of every file in the manifest
 PAGE_SIZE = 16384
 NEVER = np.iinfo("int64").min
 
@@ -26,6 +28,50 @@ def shard_of(user_id: str, shards: int) -> int:
 def shard_files(manifest: dict, shard: str) -> list[str]:
     """The files of one shard, oldest first: its base file, then its delta layers."""
     return [shard, *manifest.get("deltas", {}).get(shard, [])]
+
+
+def file_record(path: Path) -> dict:
+    """Size and SHA-256 of a file, as the manifest records it."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while chunk := fh.read(1 << 20):
+            h.update(chunk)
+    return {"bytes": path.stat().st_size, "sha256": h.hexdigest()}
+
+
+_VERIFIED: dict[tuple, str] = {}  # (device, inode, size, mtime) -> SHA-256 this process has checked
+_VERIFIED_LOCK = threading.Lock()
+
+
+def check_file(path: Path, record: dict | None, *, content: bool = True) -> Path:
+    """``path`` after checking it against its manifest record: the size on every call, and with
+    ``content`` the SHA-256, once per file and process (hard links that later snapshots share are
+    not read again)."""
+    try:
+        st = path.stat()
+    except FileNotFoundError:
+        raise ArtifactError(f"{path.parent}: file '{path.name}' is missing; the snapshot is damaged. "
+                            "Publish again.") from None
+    if record is None:
+        raise ArtifactError(f"{path}: the snapshot manifest records no checksum for this file; the snapshot is "
+                            "damaged. Publish again.")
+    if st.st_size != record["bytes"]:
+        raise ArtifactError(f"{path}: {st.st_size:,} bytes where the snapshot recorded {record['bytes']:,} "
+                            "(truncated or overwritten); the snapshot is damaged. Publish a new snapshot, "
+                            "e.g. `labeler run --full`, or restore the store folder from a backup.")
+    if not content:
+        return path
+    key = (st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns)
+    with _VERIFIED_LOCK:
+        if _VERIFIED.get(key) == record["sha256"]:
+            return path
+    if file_record(path)["sha256"] != record["sha256"]:
+        raise ArtifactError(f"{path}: checksum differs from the one recorded at publish; the file is damaged "
+                            "and is not served. Publish a new snapshot, e.g. `labeler run --full`, or restore "
+                            "the store folder from a backup.")
+    with _VERIFIED_LOCK:
+        _VERIFIED[key] = record["sha256"]
+    return path
 
 
 def user_digest(user_id: str) -> str:

@@ -14,6 +14,7 @@ import hashlib
 import json
 import logging
 import os
+import shutil
 import sqlite3
 import uuid
 from concurrent.futures import ThreadPoolExecutor
@@ -28,8 +29,8 @@ from .. import __version__
 from ..config import LabelConfig
 from ..errors import InputError
 from ..intake import rank_item_topics
-from .layout import FORMAT, PAGE_SIZE, clean, current_name, fsync_dir, read_manifest, shard_of, to_us, tombstones, \
-    user_digest
+from .layout import FORMAT, PAGE_SIZE, check_file, clean, current_name, file_record, fsync_dir, read_manifest, \
+    shard_of, to_us, tombstones, user_digest
 
 log = logging.getLogger(__name__)
 
@@ -37,7 +38,7 @@ log = logging.getLogger(__name__)
 def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None, *,
                   history: pd.DataFrame | None = None, as_of=None, shards: int = 16,
                   retain: int = 3, workers: int | None = None, changed_users=None,
-                  compact_share: float = 0.5, max_layers: int = 8) -> str:
+                  compact_share: float = 0.5, max_layers: int = 8, content_key: str | None = None) -> str:
     """Publish a new store snapshot from a footprints table; returns the snapshot name.
 
     ``footprints`` is what :func:`labeler.build_footprints` returns (or a :class:`LabelRun`, or an
@@ -50,6 +51,11 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
     user's rows are as published before; lookups age them to the new watermark). When the current
     snapshot has this format, shard count, taxonomy and settings, only those users' rows are
     written, as delta layers; otherwise the publish is full and the tables must hold everyone.
+
+    ``content_key``: a name for exactly what is being published (the job's: its inputs, settings
+    and the snapshot it builds on). When the current snapshot was published under the same key,
+    nothing is written and its name is returned, so a run redone after a crash that followed its
+    publish leaves the store as a clean run would; the key also names the snapshot folder.
     """
     from ..labelling import LabelRun
     cfg = config or LabelConfig()
@@ -60,6 +66,10 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
         history = run.history_frame() if history is None else history
     root = Path(path)
     previous = read_manifest(root, current_name(root), any_format=True) if (root / "CURRENT").exists() else None
+    if content_key is not None and previous is not None and previous.get("content_key") == content_key:
+        log.info("store snapshot %s already holds this publish (content key %s); nothing written",
+                 previous["name"], content_key[:12])
+        return previous["name"]
     layered = changed_users is not None and _layerable(previous, shards, taxonomy, cfg)
     only = pa.array([str(u) for u in changed_users], pa.string()) if layered else None
     fp = _arrow(footprints, only)
@@ -81,8 +91,10 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
     watermark = to_us(as_of) if as_of is not None else to_us(last) if last is not None else None
 
     seq = (previous["sequence"] + 1) if previous else 1
-    name = f"snap-{seq:06d}-{uuid.uuid4().hex[:8]}"
+    name = f"snap-{seq:06d}-{(content_key or uuid.uuid4().hex)[:8]}"
     tmp = root / "snapshots" / f".{name}.tmp"
+    for leftover in (tmp, root / "snapshots" / name):  # of a publish of this key that crashed before its switch
+        shutil.rmtree(leftover, ignore_errors=True)
     tmp.mkdir()
     items_digest = _items(tmp / "items.sqlite", taxonomy, previous, root)
     topics, people = _shard_rows(fp, users)
@@ -97,6 +109,7 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
     with ThreadPoolExecutor(max_workers=max(1, min(workers or os.cpu_count() or 1, len(to_write) or 1))) as pool:
         for fut in [pool.submit(_write_shard, *job) for job in to_write]:
             fut.result()  # re-raises a failed write before anything is published
+        files = _file_records(tmp, previous and root / "snapshots" / previous["name"], previous, pool)
     for fname, info in shard_info.items():
         if info.get("users") is None:  # compacted: count what the merge kept
             con = sqlite3.connect(f"file:{tmp / fname}?mode=ro", uri=True)
@@ -107,10 +120,10 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
     manifest = {"format": FORMAT, "name": name, "sequence": seq, "tool_version": __version__,
                 "created": dt.datetime.now(dt.timezone.utc).isoformat(), "watermark_us": watermark,
                 "taxonomy_version": taxonomy.version, "config": json.loads(cfg.canonical_json()),
-                "items_digest": items_digest, "n_shards": shards, "shards": shard_info, "deltas": deltas,
+                "items_digest": items_digest, "files": files, "n_shards": shards, "shards": shard_info, "deltas": deltas,
                 "users": (previous["users"] + sum(v["new_users"] for v in shard_info.values())) if layered
                 else n_users,
-                "publish": "changed users as delta layers" if layered else "full",
+                "publish": "changed users as delta layers" if layered else "full", "content_key": content_key,
                 "rewritten_shards": rewritten}
     (tmp / "manifest.json").write_text(json.dumps(manifest, indent=2, sort_keys=True) + "\n")
     for f in tmp.iterdir():
@@ -130,6 +143,21 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
     log.info("published store snapshot %s (%s): %d users and %d footprint rows written to %d files", name,
              manifest["publish"], n_users, n_rows, len(rewritten))
     return name
+
+
+def _file_records(tmp: Path, prev_dir: Path | None, previous: dict | None, pool) -> dict:
+    """Size and SHA-256 of every file of the new snapshot; a file linked from the previous one keeps
+    its record, so a publish reads only the files it wrote."""
+    known = (previous or {}).get("files", {})
+    records, fresh = {}, []
+    for f in sorted(p.name for p in tmp.iterdir()):
+        if f in known and prev_dir is not None and (prev_dir / f).exists() and os.path.samefile(tmp / f, prev_dir / f):
+            records[f] = known[f]
+        else:
+            fresh.append(f)
+    for f, rec in zip(fresh, pool.map(lambda f: file_record(tmp / f), fresh)):
+        records[f] = rec
+    return dict(sorted(records.items()))
 
 
 def _arrow(table, only: pa.Array | None) -> pa.Table:
@@ -195,6 +223,8 @@ def _plan_layers(prev_dir: Path, previous: dict, tmp: Path, seq: int, pieces: li
         if u_k.num_rows == 0:
             info["new_users"] = 0
         elif len(layers) + 1 > max_layers or in_layers > compact_share * max(info["users"], 1):
+            for f in sources:  # read whole by the merge: a damaged file must not be carried forward
+                check_file(f, previous["files"].get(f.name))
             before = info["users"] + info.get("layer_users", 0) - info.get("layer_repeats", 0)
             to_write.append((tmp / fname, t_k, u_k, sources))
             rewritten.append(fname)

@@ -13,7 +13,7 @@ import pandas as pd
 
 from ..config import LabelConfig
 from ..errors import ArtifactError, InputError
-from .layout import current_name, read_manifest, shard_files, shard_of, to_us
+from .layout import check_file, current_name, read_manifest, shard_files, shard_of, to_us
 
 @dataclasses.dataclass(frozen=True)
 class TopicState:
@@ -61,15 +61,25 @@ _TOPICS = ("SELECT level, topic_id, interactions, engaged_interactions, known, f
            "recent, history_len FROM topics WHERE user_id = ?")
 
 
+_HISTORY = "SELECT history_len FROM users WHERE user_id = ?"
+
+
 def _ts(us) -> pd.Timestamp | None:
     return None if us is None else pd.Timestamp(us, unit="us", tz="UTC")
 
 
 class Store:
-    """Read-only access to the current snapshot of a store; safe to share between threads."""
+    """Read-only access to the current snapshot of a store; safe to share between threads.
 
-    def __init__(self, path):
+    Every file of the snapshot is checked against the size and SHA-256 its manifest recorded at
+    publish: sizes when the snapshot is opened, contents the first time a file is read (about
+    1 GB/s; once per file and process). A damaged snapshot is refused with an
+    :class:`~labeler.errors.ArtifactError`, never served. ``verify=False`` checks sizes only.
+    """
+
+    def __init__(self, path, verify: bool = True):
         self.root = Path(path)
+        self.verify = verify
         self._local = threading.local()
         self._lock = threading.Lock()
         self._load(current_name(self.root))
@@ -79,8 +89,7 @@ class Store:
         folder = self.root / "snapshots" / name
         files = [f for shard in manifest["shards"] for f in shard_files(manifest, shard)]
         for f in ["items.sqlite", *files]:
-            if not (folder / f).exists():
-                raise ArtifactError(f"{folder}: file '{f}' is missing; the snapshot is damaged. Publish again.")
+            check_file(folder / f, manifest["files"].get(f), content=False)
         with self._lock:
             self.name, self.manifest, self._folder = name, manifest, folder
             self.config = LabelConfig.model_validate(manifest["config"])
@@ -106,9 +115,20 @@ class Store:
             self._local.snapshot = self.name
         con = cache.get(fname)
         if con is None:
-            uri = f"file:{self._folder / fname}?mode=ro&immutable=1"
+            uri = f"file:{self.path(fname)}?mode=ro&immutable=1"
             con = cache[fname] = sqlite3.connect(uri, uri=True)
         return con
+
+    def path(self, fname: str) -> Path:
+        """A file of the current snapshot, checked against its manifest record."""
+        return check_file(self._folder / fname, self.manifest["files"].get(fname), content=self.verify)
+
+    def _query(self, fname: str, sql: str, args=()) -> list:
+        try:
+            return self._con(fname).execute(sql, args).fetchall()
+        except sqlite3.DatabaseError as exc:
+            raise ArtifactError(f"{self._folder / fname}: cannot be read ({exc}); the snapshot is damaged. "
+                                "Publish a new snapshot, e.g. `labeler run --full`.") from None
 
     def _user(self, user_id: str):
         """(history length, topic rows) of one user, from the newest layer of their shard that
@@ -117,23 +137,21 @@ class Store:
         first, since most users are not in it."""
         shard = f"users-{shard_of(user_id, self.manifest['n_shards']):02d}.sqlite"
         for layer in reversed(self.manifest.get("deltas", {}).get(shard, ())):
-            con = self._con(layer)
-            row = con.execute("SELECT history_len FROM users WHERE user_id = ?", (user_id,)).fetchone()
-            if row is not None:
-                return row[0], con.execute(_TOPICS, (user_id,)).fetchall()
-        con = self._con(shard)
-        topics = con.execute(_TOPICS, (user_id,)).fetchall()
+            row = self._query(layer, _HISTORY, (user_id,))
+            if row:
+                return row[0][0], self._query(layer, _TOPICS, (user_id,))
+        topics = self._query(shard, _TOPICS, (user_id,))
         if topics:
             return topics[0][9], topics
-        row = con.execute("SELECT history_len FROM users WHERE user_id = ?", (user_id,)).fetchone()
-        return (row[0] if row else 0), topics
+        row = self._query(shard, _HISTORY, (user_id,))
+        return (row[0][0] if row else 0), topics
 
     def _names(self, topic_ids: Iterable[str]) -> dict[str, str]:
         ids = sorted(set(topic_ids))
         if not ids:
             return {}
         q = f"SELECT topic_id, name FROM topics WHERE topic_id IN ({','.join('?' * len(ids))})"
-        return dict(self._con("items.sqlite").execute(q, ids).fetchall())
+        return dict(self._query("items.sqlite", q, ids))
 
     def footprint(self, user_id: str, level: int | None = None) -> Footprint:
         """The user's topics as of the snapshot's watermark; an unknown user gets an empty footprint."""
@@ -166,20 +184,18 @@ class Store:
             cached = getattr(self, "_catalog_cache", None)
             if cached is not None and cached[0] == self.name:
                 return cached[1], cached[2]
-            con = sqlite3.connect(f"file:{self._folder / 'items.sqlite'}?mode=ro&immutable=1", uri=True)
+            rows = self._query("items.sqlite", "SELECT item_id, level, valid_from_us, topic_id FROM item_topics "
+                               "ORDER BY item_id, level, valid_from_us, pos")
             items: dict = {}
-            for item, level, vf, topic in con.execute(
-                    "SELECT item_id, level, valid_from_us, topic_id FROM item_topics "
-                    "ORDER BY item_id, level, valid_from_us, pos"):
+            for item, level, vf, topic in rows:
                 periods = items.setdefault(item, {}).setdefault(level, [])
                 got = (topic,) if topic is not None else ()  # null: no topic from valid_from on
                 if periods and periods[-1][0] == vf:
                     periods[-1] = (vf, periods[-1][1] + got)
                 else:
                     periods.append((vf, got))
-            names = dict(con.execute("SELECT topic_id, name FROM topics").fetchall())
-            levels = sorted(r[0] for r in con.execute("SELECT DISTINCT level FROM topics"))
-            con.close()
+            names = dict(self._query("items.sqlite", "SELECT topic_id, name FROM topics"))
+            levels = sorted(r[0] for r in self._query("items.sqlite", "SELECT DISTINCT level FROM topics"))
             self._catalog_cache = (self.name, items, names)
             self._catalog_levels = levels
             return items, names
@@ -283,6 +299,6 @@ def _classify_one(topics, level: int, known_set: set, history: int, cfg: LabelCo
     return "new_interest", next(t for t, k in zip(topics, known) if not k)
 
 
-def open_store(path) -> Store:
+def open_store(path, verify: bool = True) -> Store:
     """Open a store for lookups (see :class:`Store`)."""
-    return Store(path)
+    return Store(path, verify=verify)
