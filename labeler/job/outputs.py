@@ -8,6 +8,7 @@ re-run after a crash never see a half-written one.
 """
 from __future__ import annotations
 
+import bisect
 import logging
 import os
 import shutil
@@ -154,17 +155,88 @@ class GenerationWriter:
         watermark by ``aged``), plus the re-labelled users' new rows.
 
         The previous files are sorted and hold no row of the users written anew, so only the new
-        rows are sorted, and the two are merged by user."""
+        rows are sorted, and the previous file is streamed one row group at a time and merged
+        with them by user: memory follows the new rows, not the population. ``new_footprints``
+        and ``new_people`` keep just the new rows; ``footprint_rows`` and ``user_rows`` count all.
+        """
         fp = _sorted(footprints.cast(FOOTPRINTS_SCHEMA), FOOTPRINT_SORT)
         us = _sorted(users.cast(USERS_SCHEMA), [("user_id", "ascending", "at_end")])
-        if self.prev is not None and self.people is not None:
-            kept = aged(_without(pq.read_table(self.prev / "footprints.parquet"), self.people))
-            fp = merge_by_user(kept.cast(FOOTPRINTS_SCHEMA), fp)
-            us = merge_by_user(_without(pq.read_table(self.prev / "users.parquet"), self.people).cast(USERS_SCHEMA), us)
-        write_table(fp, self.gen / "footprints.parquet", "write_footprints")
+        merge = self.prev is not None and self.people is not None
+        self.footprint_rows = write_merged(self.prev / "footprints.parquet" if merge else None, self.people, fp,
+                                           aged, FOOTPRINTS_SCHEMA, self.gen / "footprints.parquet",
+                                           "write_footprints")
         failpoints.hit("mid_footprints_write")
-        write_table(us, self.gen / "users.parquet", "write_footprints")
-        self.footprints, self.people = fp, us
+        self.user_rows = write_merged(self.prev / "users.parquet" if merge else None, self.people, us,
+                                      lambda t: t, USERS_SCHEMA, self.gen / "users.parquet", "write_footprints")
+        self.new_footprints, self.new_people = fp, us
+
+
+def write_merged(prev: Path | None, drop: pa.Array | None, new: pa.Table, aged, schema: pa.Schema, dest: Path,
+                 point: str) -> int:
+    """Write ``dest``: the rows of ``prev`` (sorted by user; users in ``drop`` left out, the rest
+    passed through ``aged``) merged by user with ``new`` (sorted, no user in both), streaming
+    ``prev`` one row group at a time. Row groups hold exactly ``ROW_GROUP`` rows, as one
+    ``write_table`` of the whole would, so the bytes do not depend on how the rows arrived.
+    Returns the number of rows written."""
+    dest.parent.mkdir(parents=True, exist_ok=True)
+    tmp = dest.with_name(f".{dest.name}.{uuid.uuid4().hex}")
+    failpoints.hit(point)
+    out = _RowGroups(pq.ParquetWriter(tmp, schema), schema)
+    try:
+        if prev is None:
+            out.add(new)
+        else:
+            ids = new.column("user_id").to_pylist()
+            gone = sorted(drop.to_pylist()) if drop is not None else []
+            taken = 0
+            for batch in pq.ParquetFile(prev).iter_batches(batch_size=ROW_GROUP):
+                old = pa.Table.from_batches([batch])
+                if old.num_rows and gone:  # only the dropped ids inside this batch's range of users
+                    first, last = old.column("user_id")[0].as_py(), old.column("user_id")[-1].as_py()
+                    inside = gone[bisect.bisect_left(gone, first):bisect.bisect_right(gone, last)]
+                    old = _without(old, pa.array(inside, pa.string())) if inside else old
+                old = aged(old).cast(schema)
+                if old.num_rows == 0:
+                    continue
+                upto = bisect.bisect_right(ids, old.column("user_id")[-1].as_py())  # new users up to this batch's last
+                out.add(merge_by_user(old, new.slice(taken, upto - taken)) if upto > taken else old)
+                taken = upto
+            out.add(new.slice(taken))
+        out.close()
+    except BaseException:
+        out.writer.close()
+        tmp.unlink(missing_ok=True)
+        raise
+    with open(tmp, "rb") as fh:
+        os.fsync(fh.fileno())
+    os.replace(tmp, dest)
+    return out.rows
+
+
+class _RowGroups:
+    """Buffers tables and writes them in row groups of exactly ``ROW_GROUP`` rows."""
+
+    def __init__(self, writer: pq.ParquetWriter, schema: pa.Schema):
+        self.writer, self.schema, self.pending, self.buffered, self.rows = writer, schema, [], 0, 0
+
+    def add(self, table: pa.Table) -> None:
+        if table.num_rows == 0:
+            return
+        self.pending.append(table.cast(self.schema))
+        self.buffered += table.num_rows
+        self.rows += table.num_rows
+        if self.buffered >= ROW_GROUP:
+            whole = pa.concat_tables(self.pending)
+            full = (whole.num_rows // ROW_GROUP) * ROW_GROUP
+            self.writer.write_table(whole.slice(0, full), row_group_size=ROW_GROUP)
+            rest = whole.slice(full)
+            self.pending, self.buffered = ([rest] if rest.num_rows else []), rest.num_rows
+
+    def close(self) -> None:
+        if self.pending or self.rows == 0:  # an empty file gets the empty row group write_table gives it
+            self.writer.write_table(pa.concat_tables(self.pending) if self.pending else self.schema.empty_table(),
+                                    row_group_size=ROW_GROUP)
+        self.writer.close()
 
 
 def merge_by_user(a: pa.Table, b: pa.Table) -> pa.Table:

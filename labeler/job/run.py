@@ -210,7 +210,12 @@ class _Run:
                             for n, p in sorted(parts.items())}, "taxonomy": tax.version,
              "register": self.register_rel, "labels": json.loads(lab.canonical_json()),
              "shards": cfg.run.store_shards, "tool": __version__}, sort_keys=True, default=str).encode()).hexdigest()
-        snapshot = publish_store(work / "store", writer.footprints, view, lab, history=writer.people,
+        from ..store.publish import publishes_layered
+        if people is not None and publishes_layered(work / "store", cfg.run.store_shards, view, lab):
+            fp_rows, user_rows = writer.new_footprints, writer.new_people  # delta layers: the changed users only
+        else:
+            fp_rows, user_rows = writer.gen / "footprints.parquet", writer.gen / "users.parquet"
+        snapshot = publish_store(work / "store", fp_rows, view, lab, history=user_rows,
                                  as_of=pd.Timestamp(watermark_us, unit="us", tz="UTC"),
                                  shards=cfg.run.store_shards, retain=cfg.run.keep_generations,
                                  changed_users=None if people is None else people.to_pylist(),
@@ -229,7 +234,7 @@ class _Run:
             quarantined=int(sum(parts[n].quarantined for n in staged_new if n in parts)),
             rows_out=counts, label_rows_written=writer.rows_written,
             dates_rewritten=writer.dates_written, dates_linked=linked,
-            footprint_rows=writer.footprints.num_rows, users=writer.people.num_rows,
+            footprint_rows=writer.footprint_rows, users=writer.user_rows,
             versions={"taxonomy": tax.version, "labels_by_date": {
                 d: versions(d) for d in writer.dates_written}},
             store={"dir": str(work / "store"), "snapshot": snapshot, "publish": _store_manifest(work, snapshot)["publish"]})

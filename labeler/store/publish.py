@@ -41,8 +41,9 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
                   compact_share: float = 0.5, max_layers: int = 8, content_key: str | None = None) -> str:
     """Publish a new store snapshot from a footprints table; returns the snapshot name.
 
-    ``footprints`` is what :func:`labeler.build_footprints` returns (or a :class:`LabelRun`, or an
-    Arrow table with the same columns). Its ``history_len`` and ``recent_us`` columns let lookups
+    ``footprints`` is what :func:`labeler.build_footprints` returns (or a :class:`LabelRun`, an
+    Arrow table with the same columns, or a Parquet file of them, such as a job generation's
+    ``footprints.parquet``; ``history`` likewise). Its ``history_len`` and ``recent_us`` columns let lookups
     apply ``warmup`` and memory windows; ``history`` (user_id, history_len) adds users whose every
     interaction was unplaced. Shards are written in parallel by ``workers`` threads (default: one
     per core).
@@ -160,8 +161,21 @@ def _file_records(tmp: Path, prev_dir: Path | None, previous: dict | None, pool)
     return dict(sorted(records.items()))
 
 
+def publishes_layered(path, shards: int, taxonomy, config: LabelConfig) -> bool:
+    """Whether a publish with ``changed_users`` into the store at ``path`` would write delta layers
+    (and so needs only the changed users' rows), rather than every user's."""
+    root = Path(path)
+    previous = read_manifest(root, current_name(root), any_format=True) if (root / "CURRENT").exists() else None
+    return _layerable(previous, shards, taxonomy, config)
+
+
 def _arrow(table, only: pa.Array | None) -> pa.Table:
-    """An Arrow table of an Arrow table or a pandas frame, cut to the users ``only`` when given."""
+    """An Arrow table of an Arrow table, a pandas frame or a Parquet file, cut to the users ``only``
+    when given."""
+    if isinstance(table, (str, Path)):
+        import pyarrow.dataset as ds
+        data = ds.dataset(table, format="parquet")
+        table = data.to_table(filter=None if only is None else ds.field("user_id").isin(only))
     if not isinstance(table, pa.Table):
         table = pa.Table.from_pandas(table, preserve_index=False)
     table = table.set_column(table.schema.get_field_index("user_id"), "user_id",
