@@ -121,20 +121,34 @@ def _answers(store, users, items):
     return out
 
 
+@pytest.mark.parametrize("partial", [False, True])
 @pytest.mark.parametrize("cfg", [LabelConfig(), LabelConfig(min_support=2, memory_days=0.01)])
-def test_publishing_changed_users_as_layers_answers_like_a_full_publish(tmp_path, cfg):
+def test_publishing_changed_users_as_layers_answers_like_a_full_publish(tmp_path, cfg, partial):
     """Publishes of the changed users only (delta layers, then a compaction when the layers pass
     max_layers) answer every footprint and classify exactly as a full publish of the same tables,
-    users not republished included (their rows are aged to the new watermark at lookup)."""
+    users not republished included (their rows are aged to the new watermark at lookup). With
+    ``partial`` a user already published gets only the topic rows the new event touched (as the
+    job's continued users do) and the older files fill in the rest. Erasing a user afterwards
+    (which reads every layer) keeps everyone else's answers."""
+    from labeler import forget_users
     frame = LOG
     publish_store(tmp_path / "layered", plan_labels(frame, TAX, cfg), TAX, cfg, shards=2)
     users, items = ["ana", "ben", "cy", "dee", "nobody"], ["k1", "k2", "b1", "s1", "m1", "zz"]
-    steps = [("ana", "b1", 30), ("cy", "s1", 31), ("ana", "m1", 40), ("ben", "k1", 50), ("dee", "zz", 60)]
+    steps = [("ana", "b1", 30), ("cy", "s1", 31), ("ana", "m1", 40), ("ben", "k1", 50), ("dee", "zz", 60),
+             ("ana", "k2", 70), ("ana", "s1", 71)]
     written = []
     for k, event in enumerate(steps):
+        seen = set(frame["user_id"])
         frame = pd.concat([frame, log(event)], ignore_index=True)
         run = plan_labels(frame, TAX, cfg)
-        name = publish_store(tmp_path / "layered", run, TAX, cfg, shards=2, changed_users=[event[0]], max_layers=2)
+        fp, kw = run, {}
+        if partial and event[0] in seen:
+            rows = run.footprints_frame()
+            at = rows["last_ts"].max()
+            fp = rows[(rows["user_id"] == event[0]) & (rows["last_ts"] == at)]
+            kw = dict(history=run.history_frame(), partial_users=[event[0]])
+        name = publish_store(tmp_path / "layered", fp, TAX, cfg, shards=2, changed_users=[event[0]], max_layers=2,
+                             as_of=run.as_of_us and pd.Timestamp(run.as_of_us, unit="us", tz="UTC"), **kw)
         manifest = json.loads((tmp_path / "layered" / "snapshots" / name / "manifest.json").read_text())
         assert manifest["publish"] == "changed users as delta layers"
         assert len(manifest["rewritten_shards"]) == 1  # one layer, or one compacted base, for one user
@@ -145,6 +159,9 @@ def test_publishing_changed_users_as_layers_answers_like_a_full_publish(tmp_path
         assert manifest["users"] == len(set(frame["user_id"]))
     assert any(".d" in f for f in written) and any(".d" not in f for f in written)  # layers, then a compaction
     assert all(len(v) <= 2 for v in manifest["deltas"].values())
+    assert forget_users(tmp_path / "layered", ["dee"]).erased == ("dee",)
+    after, before = (_answers(open_store(tmp_path / d), users, items) for d in ("layered", f"full-{k}"))
+    assert after.pop("dee")[1] == () and {u: a for u, a in before.items() if u != "dee"} == after
 
 
 def test_interrupted_publish_leaves_the_previous_snapshot_served(tmp_path, monkeypatch):

@@ -31,6 +31,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from .. import __version__
 from ..config import JobConfig
@@ -211,15 +212,22 @@ class _Run:
              "register": self.register_rel, "labels": json.loads(lab.canonical_json()),
              "shards": cfg.run.store_shards, "tool": __version__}, sort_keys=True, default=str).encode()).hexdigest()
         from ..store.publish import publishes_layered
+        partial = None
         if people is not None and publishes_layered(work / "store", cfg.run.store_shards, view, lab):
-            fp_rows, user_rows = writer.new_footprints, writer.new_people  # delta layers: the changed users only
+            # delta layers: the changed users only, and of a continued user only the topics met since
+            # the last watermark (their other rows are as published; lookups age them)
+            fp_rows, user_rows, partial = writer.new_footprints, writer.new_people, continued
+            if continued:
+                stale = pc.and_(pc.is_in(fp_rows.column("user_id"), value_set=pa.array(continued, pa.string())),
+                                pc.less_equal(pc.cast(fp_rows.column("last_ts"), pa.int64()), state["watermark_us"]))
+                fp_rows = fp_rows.filter(pc.invert(stale))
         else:
             fp_rows, user_rows = writer.gen / "footprints.parquet", writer.gen / "users.parquet"
         snapshot = publish_store(work / "store", fp_rows, view, lab, history=user_rows,
                                  as_of=pd.Timestamp(watermark_us, unit="us", tz="UTC"),
                                  shards=cfg.run.store_shards, retain=cfg.run.keep_generations,
                                  changed_users=None if people is None else people.to_pylist(),
-                                 content_key=content_key)
+                                 content_key=content_key, partial_users=partial)
         self._timed("store", t0)
         failpoints.hit("after_store")
 

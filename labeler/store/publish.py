@@ -4,7 +4,7 @@ A full publish writes every shard whose content changed. A publish of the users 
 (``changed_users``, the job's daily path) writes, per shard holding such users, one small delta
 layer with just their rows, and hard-links the shard's base file and earlier layers; readers look
 a user up in the newest layer that holds them. A shard whose layers would pass ``max_layers``, or
-hold more users than ``compact_share`` of its base, is compacted: its layers are merged into a new
+hold more topic rows than ``compact_share`` of its base, is compacted: its layers are merged into a new
 base file. So a day's publish costs what the day changed, and a lookup stays a few B-tree probes.
 """
 from __future__ import annotations
@@ -38,7 +38,8 @@ log = logging.getLogger(__name__)
 def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None, *,
                   history: pd.DataFrame | None = None, as_of=None, shards: int = 16,
                   retain: int = 3, workers: int | None = None, changed_users=None,
-                  compact_share: float = 0.5, max_layers: int = 8, content_key: str | None = None) -> str:
+                  compact_share: float = 0.5, max_layers: int = 8, content_key: str | None = None,
+                  partial_users=None) -> str:
     """Publish a new store snapshot from a footprints table; returns the snapshot name.
 
     ``footprints`` is what :func:`labeler.build_footprints` returns (or a :class:`LabelRun`, an
@@ -52,6 +53,11 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
     user's rows are as published before; lookups age them to the new watermark). When the current
     snapshot has this format, shard count, taxonomy and settings, only those users' rows are
     written, as delta layers; otherwise the publish is full and the tables must hold everyone.
+
+    ``partial_users``: of the changed users, those for whom ``footprints`` holds only the topic
+    rows that changed (the job's continued users: topics met since the last watermark) and
+    ``history`` their new history length; their other topic rows stay as published. Needs a
+    layered publish (see :func:`publishes_layered`).
 
     ``content_key``: a name for exactly what is being published (the job's: its inputs, settings
     and the snapshot it builds on). When the current snapshot was published under the same key,
@@ -73,6 +79,11 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
         return previous["name"]
     layered = changed_users is not None and _layerable(previous, shards, taxonomy, cfg)
     only = pa.array([str(u) for u in changed_users], pa.string()) if layered else None
+    partial = pa.array([str(u) for u in partial_users or ()], pa.string())
+    if len(partial) and not layered:
+        raise InputError("partial_users needs a layered publish (the current snapshot must have this format, shard "
+                         "count, taxonomy and settings); publish every row of every user instead.",
+                         source=str(path), column="partial_users")
     fp = _arrow(footprints, only)
     missing = [c for c in ("user_id", "level", "topic_id", "interactions", "known", "history_len",
                            "recent_us", "last_ts") if c not in fp.column_names]
@@ -98,7 +109,7 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
         shutil.rmtree(leftover, ignore_errors=True)
     tmp.mkdir()
     items_digest = _items(tmp / "items.sqlite", taxonomy, previous, root)
-    topics, people = _shard_rows(fp, users)
+    topics, people = _shard_rows(fp, users, partial)
     n_users, n_rows = people.num_rows, topics.num_rows
     pieces = _by_shard(topics, people, shards)
     if layered:
@@ -223,9 +234,10 @@ def _plan_layers(prev_dir: Path, previous: dict, tmp: Path, seq: int, pieces: li
 
     A shard's ``users`` and ``rows`` count its base file; ``layer_users`` and ``layer_rows`` its
     delta layers together; ``new_users`` how many changed users the snapshot did not hold before.
-    Compacting merges the base, the layers and the changed users' rows into a new base inside
-    SQLite (each user's rows from the newest source holding them), so it costs a copy, not a
-    re-encoding of every row.
+    A shard is compacted when its layers would pass ``max_layers`` or hold more rows (topic rows
+    and user rows) than ``compact_share`` of its base. Compacting merges the base, the layers and
+    the changed users' rows into a new base inside SQLite (see :func:`_write_shard`), so it costs
+    a copy, not a re-encoding of every row.
     """
     shard_info, deltas, to_write, rewritten = {}, {}, [], []
     for k, (t_k, u_k) in enumerate(pieces):
@@ -236,7 +248,8 @@ def _plan_layers(prev_dir: Path, previous: dict, tmp: Path, seq: int, pieces: li
         in_layers = info.get("layer_users", 0) + u_k.num_rows
         if u_k.num_rows == 0:
             info["new_users"] = 0
-        elif len(layers) + 1 > max_layers or in_layers > compact_share * max(info["users"], 1):
+        elif len(layers) + 1 > max_layers or \
+                info.get("layer_rows", 0) + t_k.num_rows + in_layers > compact_share * max(info["rows"] + info["users"], 1):
             for f in sources:  # read whole by the merge: a damaged file must not be carried forward
                 check_file(f, previous["files"].get(f.name))
             before = info["users"] + info.get("layer_users", 0) - info.get("layer_repeats", 0)
@@ -293,17 +306,20 @@ def read_shard(path: Path) -> tuple[pd.DataFrame, pd.DataFrame]:
 
 
 def merge_layers(layers: list[tuple[pd.DataFrame, pd.DataFrame]]) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """One shard's rows from its layers, oldest first: each user's rows come from the newest layer
-    that holds the user."""
-    users = pd.concat([u[["user_id", "history_len"]].assign(_layer=i) for i, (_, u) in enumerate(layers)],
+    """One shard's rows from its layers, oldest first, as a reader sees them: each user's history
+    from the newest layer holding the user, each topic row from the newest layer holding it among
+    those from the user's newest whole layer on (``whole`` = 0: the layer has only changed rows)."""
+    users = pd.concat([u[["user_id", "history_len", "whole"]].assign(_layer=i) for i, (_, u) in enumerate(layers)],
                       ignore_index=True)
+    whole = users[users["whole"] == 1].groupby("user_id")["_layer"].max()
     users = users.sort_values("_layer", kind="stable").drop_duplicates("user_id", keep="last")
-    newest = pd.Series(users["_layer"].to_numpy(), index=users["user_id"].to_numpy())
     fp = pd.concat([f.drop(columns=[c for c in f.columns if c.startswith("_")]).assign(_layer=i)
                     for i, (f, _) in enumerate(layers)], ignore_index=True)
-    fp = fp[fp["user_id"].map(newest).to_numpy() == fp["_layer"].to_numpy()].drop(columns="_layer")
+    fp = fp[fp["_layer"].to_numpy() >= fp["user_id"].map(whole).fillna(0).to_numpy()]
+    fp = fp.sort_values("_layer", kind="stable").drop_duplicates(["user_id", "level", "topic_id"], keep="last")
+    fp = fp.drop(columns=["_layer", "history_len"]).merge(users[["user_id", "history_len"]], on="user_id", how="left")
     return (fp.sort_values(["user_id", "level", "topic_id"]).reset_index(drop=True),
-            users.drop(columns="_layer").sort_values("user_id").reset_index(drop=True))
+            users.drop(columns=["_layer", "whole"]).sort_values("user_id").reset_index(drop=True))
 
 
 TOPIC_COLUMNS = ("user_id", "level", "topic_id", "interactions", "engaged_interactions", "known", "first_us",
@@ -326,10 +342,12 @@ def _recent_text(values) -> pa.Array:
     return pc.binary_join_element_wise("[", pc.fill_null(text, ""), "]", "")
 
 
-def _shard_rows(fp: pa.Table, users: pa.Table) -> tuple[pa.Table, pa.Table]:
-    """(topic rows, users) as Arrow tables in the shards' column layout, sorted by their keys."""
+def _shard_rows(fp: pa.Table, users: pa.Table, partial: pa.Array) -> tuple[pa.Table, pa.Table]:
+    """(topic rows, users) as Arrow tables in the shards' column layout, sorted by their keys.
+    ``whole`` is 0 for the users in ``partial`` (their rows only overlay older ones), else 1."""
     people = pa.table({"user_id": users.column("user_id"),
-                       "history_len": pc.fill_null(pc.cast(users.column("history_len"), pa.int64()), 0)})
+                       "history_len": pc.fill_null(pc.cast(users.column("history_len"), pa.int64()), 0),
+                       "whole": pc.cast(pc.invert(pc.is_in(users.column("user_id"), value_set=partial)), pa.int64())})
     people = people.take(pc.sort_indices(people, [("user_id", "ascending")]))
     n = fp.num_rows
     col = lambda name: fp.column(name) if name in fp.column_names else None  # noqa: E731
@@ -367,7 +385,8 @@ def _shard_digest(topics: pa.Table, people: pa.Table) -> str:
 
 _SCHEMA = f"""
     PRAGMA page_size = {PAGE_SIZE}; PRAGMA journal_mode = OFF; PRAGMA synchronous = OFF;
-    CREATE TABLE users (user_id TEXT PRIMARY KEY, history_len INTEGER NOT NULL) WITHOUT ROWID;
+    CREATE TABLE users (user_id TEXT PRIMARY KEY, history_len INTEGER NOT NULL, whole INTEGER NOT NULL)
+        WITHOUT ROWID;
     CREATE TABLE topics (user_id TEXT NOT NULL, level INTEGER NOT NULL, topic_id TEXT NOT NULL,
         interactions INTEGER, engaged_interactions INTEGER, known INTEGER, first_us INTEGER,
         last_us INTEGER, known_since_us INTEGER, recent TEXT, history_len INTEGER NOT NULL,
@@ -380,35 +399,53 @@ def _write_shard(path: Path, topics: pa.Table, people: pa.Table, merge: list[Pat
     one range read in one B-tree. With 16 KiB pages a shard of 62,500 users x 20 topics is a
     three-level tree with 34 interior pages, soon cached, so a cold lookup reads about one page.
 
-    With ``merge`` (a shard's files, oldest first) the rows are those of ``topics``/``people``
-    plus, for every other user, their rows in the newest of those files that holds them; rows
-    are inserted in key order, so the new file is as compact as one written from scratch.
+    In a delta layer a user with ``whole`` = 0 has only the topic rows that changed; their other
+    rows are those of the older files. With ``merge`` (a shard's files, oldest first: its base,
+    then its layers) the new file is the shard as a reader sees it with ``topics``/``people`` on
+    top: each user's history from the newest source holding them, each topic row from the newest
+    source holding it among those from the user's newest whole source on. Rows are inserted in
+    key order, so the file is as compact as one written from scratch.
     """
     con = sqlite3.connect(path)
     con.executescript(_SCHEMA)
+    users = zip(*(people.column(c).to_pylist() for c in ("user_id", "history_len", "whole")))
+    rows = zip(*(topics.column(c).to_pylist() for c in TOPIC_COLUMNS))
     if not merge:
-        con.executemany("INSERT INTO users VALUES (?, ?)", zip(*(people.column(c).to_pylist() for c in people.column_names)))
-        con.executemany(f"INSERT INTO topics VALUES ({', '.join('?' * len(TOPIC_COLUMNS))})",
-                        zip(*(topics.column(c).to_pylist() for c in TOPIC_COLUMNS)))
-    else:
-        new = len(merge)
-        con.executescript("""CREATE TEMP TABLE new_users AS SELECT * FROM main.users WHERE 0;
-            CREATE TEMP TABLE new_topics AS SELECT * FROM main.topics WHERE 0;
-            CREATE TEMP TABLE owner (user_id TEXT PRIMARY KEY, src INTEGER NOT NULL) WITHOUT ROWID;""")
-        con.executemany("INSERT INTO new_users VALUES (?, ?)", zip(*(people.column(c).to_pylist() for c in people.column_names)))
-        con.executemany(f"INSERT INTO new_topics VALUES ({', '.join('?' * len(TOPIC_COLUMNS))})",
-                        zip(*(topics.column(c).to_pylist() for c in TOPIC_COLUMNS)))
-        con.execute(f"INSERT INTO owner SELECT user_id, {new} FROM new_users")
-        for i, src in enumerate(merge):
-            con.execute(f"ATTACH DATABASE ? AS s{i}", (f"file:{src}?mode=ro&immutable=1",))
-        for i in reversed(range(new)):  # newest first: a user belongs to the newest source holding them
-            con.execute(f"INSERT OR IGNORE INTO owner SELECT user_id, {i} FROM s{i}.users")
-        pick = " UNION ALL ".join(f"SELECT t.* FROM s{i}.{{0}} t JOIN owner o ON o.user_id = t.user_id AND o.src = {i}"
-                                  for i in range(new))
-        con.execute(f"INSERT INTO main.users SELECT * FROM (SELECT * FROM new_users UNION ALL "
-                    f"{pick.format('users')}) ORDER BY user_id")
-        con.execute(f"INSERT INTO main.topics SELECT * FROM (SELECT * FROM new_topics UNION ALL "
-                    f"{pick.format('topics')}) ORDER BY user_id, level, topic_id")
+        con.executemany("INSERT INTO users VALUES (?, ?, ?)", users)
+        con.executemany(f"INSERT INTO topics VALUES ({', '.join('?' * len(TOPIC_COLUMNS))})", rows)
+        con.commit()
+        con.close()
+        return
+    new = len(merge)  # source numbers: 0 the base, 1.. the layers, ``new`` the rows given here
+    con.execute("ATTACH DATABASE ':memory:' AS s%d" % new)
+    con.executescript(f"""CREATE TABLE s{new}.users AS SELECT * FROM main.users WHERE 0;
+        CREATE TABLE s{new}.topics AS SELECT * FROM main.topics WHERE 0;
+        CREATE TEMP TABLE hist (user_id TEXT PRIMARY KEY, history_len INTEGER NOT NULL) WITHOUT ROWID;
+        CREATE TEMP TABLE cut (user_id TEXT PRIMARY KEY, src INTEGER NOT NULL) WITHOUT ROWID;
+        CREATE TEMP TABLE picked (user_id TEXT, level INTEGER, topic_id TEXT, src INTEGER NOT NULL,
+            PRIMARY KEY (user_id, level, topic_id)) WITHOUT ROWID;""")
+    con.executemany(f"INSERT INTO s{new}.users VALUES (?, ?, ?)", users)
+    con.executemany(f"INSERT INTO s{new}.topics VALUES ({', '.join('?' * len(TOPIC_COLUMNS))})", rows)
+    for i, src in enumerate(merge):
+        con.execute(f"ATTACH DATABASE ? AS s{i}", (f"file:{src}?mode=ro&immutable=1",))
+    for i in range(new, 0, -1):  # newest first: the newest source wins
+        con.execute(f"INSERT OR IGNORE INTO hist SELECT user_id, history_len FROM s{i}.users")
+        con.execute(f"INSERT OR IGNORE INTO cut SELECT user_id, {i} FROM s{i}.users WHERE whole = 1")
+        con.execute(f"INSERT OR IGNORE INTO picked SELECT t.user_id, t.level, t.topic_id, {i} FROM s{i}.topics t "
+                    f"WHERE NOT EXISTS (SELECT 1 FROM cut c WHERE c.user_id = t.user_id AND c.src > {i})")
+    cols = ", ".join(f"t.{c}" for c in TOPIC_COLUMNS[:-1])
+    newer = " UNION ALL ".join(
+        f"SELECT {cols}, h.history_len FROM s{i}.topics t JOIN picked p ON p.user_id = t.user_id "
+        f"AND p.level = t.level AND p.topic_id = t.topic_id AND p.src = {i} JOIN hist h ON h.user_id = t.user_id"
+        for i in range(1, new + 1))
+    base = (f"SELECT {cols}, COALESCE((SELECT h.history_len FROM hist h WHERE h.user_id = t.user_id), "
+            "t.history_len) FROM s0.topics t WHERE NOT EXISTS (SELECT 1 FROM cut c WHERE c.user_id = t.user_id) "
+            "AND NOT EXISTS (SELECT 1 FROM picked p WHERE p.user_id = t.user_id AND p.level = t.level "
+            "AND p.topic_id = t.topic_id)")
+    con.execute("INSERT INTO main.users SELECT user_id, history_len, 1 FROM (SELECT user_id, history_len FROM hist "
+                "UNION ALL SELECT user_id, history_len FROM s0.users u WHERE NOT EXISTS "
+                "(SELECT 1 FROM hist h WHERE h.user_id = u.user_id)) ORDER BY user_id")
+    con.execute(f"INSERT INTO main.topics SELECT * FROM ({base} UNION ALL {newer}) ORDER BY user_id, level, topic_id")
     con.commit()
     con.close()
 

@@ -61,7 +61,7 @@ _TOPICS = ("SELECT level, topic_id, interactions, engaged_interactions, known, f
            "recent, history_len FROM topics WHERE user_id = ?")
 
 
-_HISTORY = "SELECT history_len FROM users WHERE user_id = ?"
+_HISTORY = "SELECT history_len, whole FROM users WHERE user_id = ?"
 
 
 def _ts(us) -> pd.Timestamp | None:
@@ -131,20 +131,31 @@ class Store:
                                 "Publish a new snapshot, e.g. `labeler run --full`.") from None
 
     def _user(self, user_id: str):
-        """(history length, topic rows) of one user, from the newest layer of their shard that
-        holds them. In the base file this is one range read of the clustered topics table (only a
-        user without topic rows is looked up in ``users``); a delta layer is asked for the user
-        first, since most users are not in it."""
+        """(history length, topic rows) of one user. In the base file this is one range read of the
+        clustered topics table (only a user without topic rows is looked up in ``users``). Delta
+        layers are asked first, newest first, since most users are in none: the newest layer
+        holding the user gives the history; a layer where the user is ``whole`` ends the search,
+        one that holds only their changed rows lets older files fill in the other topics."""
         shard = f"users-{shard_of(user_id, self.manifest['n_shards']):02d}.sqlite"
+        history, rows = None, {}
         for layer in reversed(self.manifest.get("deltas", {}).get(shard, ())):
-            row = self._query(layer, _HISTORY, (user_id,))
-            if row:
-                return row[0][0], self._query(layer, _TOPICS, (user_id,))
+            got = self._query(layer, _HISTORY, (user_id,))
+            if not got:
+                continue
+            history = got[0][0] if history is None else history
+            for r in self._query(layer, _TOPICS, (user_id,)):
+                rows.setdefault((r[0], r[1]), r)
+            if got[0][1]:
+                return history, list(rows.values())
         topics = self._query(shard, _TOPICS, (user_id,))
-        if topics:
-            return topics[0][9], topics
-        row = self._query(shard, _HISTORY, (user_id,))
-        return (row[0][0] if row else 0), topics
+        if history is None:
+            if topics:
+                return topics[0][9], topics
+            got = self._query(shard, _HISTORY, (user_id,))
+            return (got[0][0] if got else 0), topics
+        for r in topics:
+            rows.setdefault((r[0], r[1]), r)
+        return history, list(rows.values())
 
     def _names(self, topic_ids: Iterable[str]) -> dict[str, str]:
         ids = sorted(set(topic_ids))
