@@ -187,6 +187,16 @@ class LabelRun:
         t = t.order_by([t.user_id, t.level, t.topic_id])
         return _finish_footprints(self.engine.to_arrow(t))
 
+    def footprint_batches(self, rows: int = 65_536):
+        """The footprints in key order (user, level, topic) as Arrow record batches, streamed from
+        the engine, so that memory follows a batch rather than the population."""
+        if self.written is not None:
+            yield from pq.ParquetFile(self.written["footprints"]).iter_batches(batch_size=rows)
+            return
+        t = self.footprints
+        for batch in self.engine.to_batches(t.order_by([t.user_id, t.level, t.topic_id]), rows):
+            yield from _finish_footprints(pa.Table.from_batches([batch])).to_batches()
+
     def history_frame(self) -> pd.DataFrame:
         """user_id, history_len: each user's interactions up to ``as_of_us`` (unplaced ones included)."""
         if self.written is not None:

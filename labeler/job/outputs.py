@@ -159,23 +159,30 @@ class GenerationWriter:
         with them by user: memory follows the new rows, not the population. ``new_footprints``
         and ``new_people`` keep just the new rows; ``footprint_rows`` and ``user_rows`` count all.
         """
-        fp = _sorted(footprints.cast(FOOTPRINTS_SCHEMA), FOOTPRINT_SORT)
-        us = _sorted(users.cast(USERS_SCHEMA), [("user_id", "ascending", "at_end")])
         merge = self.prev is not None and self.people is not None
+        if isinstance(footprints, pa.Table):
+            fp = _sorted(footprints.cast(FOOTPRINTS_SCHEMA), FOOTPRINT_SORT)
+        elif merge:
+            raise ValueError("a stream of footprint batches is written only into a generation of its own")
+        else:  # batches already in key order (a full run streamed from the engine)
+            fp = footprints
+        us = _sorted(users.cast(USERS_SCHEMA), [("user_id", "ascending", "at_end")])
         self.footprint_rows = write_merged(self.prev / "footprints.parquet" if merge else None, self.people, fp,
                                            aged, FOOTPRINTS_SCHEMA, self.gen / "footprints.parquet",
                                            "write_footprints")
         failpoints.hit("mid_footprints_write")
         self.user_rows = write_merged(self.prev / "users.parquet" if merge else None, self.people, us,
                                       lambda t: t, USERS_SCHEMA, self.gen / "users.parquet", "write_footprints")
-        self.new_footprints, self.new_people = fp, us
+        self.new_footprints = fp if isinstance(fp, pa.Table) else None
+        self.new_people = us
 
 
 def write_merged(prev: Path | None, drop: pa.Array | None, new: pa.Table, aged, schema: pa.Schema, dest: Path,
                  point: str) -> int:
     """Write ``dest``: the rows of ``prev`` (sorted by user; users in ``drop`` left out, the rest
     passed through ``aged``) merged by user with ``new`` (sorted, no user in both), streaming
-    ``prev`` one row group at a time. Row groups hold exactly ``ROW_GROUP`` rows, as one
+    ``prev`` one row group at a time (without ``prev``, ``new`` may be an iterable of record
+    batches in order, written as they come). Row groups hold exactly ``ROW_GROUP`` rows, as one
     ``write_table`` of the whole would, so the bytes do not depend on how the rows arrived.
     Returns the number of rows written."""
     dest.parent.mkdir(parents=True, exist_ok=True)
@@ -184,7 +191,8 @@ def write_merged(prev: Path | None, drop: pa.Array | None, new: pa.Table, aged, 
     out = _RowGroups(pq.ParquetWriter(tmp, schema), schema)
     try:
         if prev is None:
-            out.add(new)
+            for piece in ([new] if isinstance(new, pa.Table) else new):
+                out.add(piece if isinstance(piece, pa.Table) else pa.Table.from_batches([piece]))
         else:
             ids = new.column("user_id").to_pylist()
             gone = sorted(drop.to_pylist()) if drop is not None else []

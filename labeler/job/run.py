@@ -194,7 +194,9 @@ class _Run:
         writer.write_stream(eng.to_batches(t.mutate(_date=t.ts.date().cast("string")).order_by("_date")))
         writer.finish_dates()
         lab = cfg.labels
-        writer.write_people(pa.concat_tables([r.footprints_arrow() for r in runs]),
+        streamed = prev_gen is None and len(runs) == 1  # a full run: every row, in key order from the engine
+        writer.write_people(runs[0].footprint_batches() if streamed else pa.concat_tables([r.footprints_arrow()
+                                                                                          for r in runs]),
                             pa.concat_tables([pa.Table.from_pandas(r.history_frame(), preserve_index=False)
                                               for r in runs]),
                             lambda tb: age_footprints(tb, watermark_us, lab.min_support, lab.memory_us))
