@@ -49,6 +49,34 @@ SORT_KEYS = ("user_id", "ts_us", "event_id", "item_id", "level")
 ROW_GROUP = 262_144
 
 
+class RowGroupWriter:
+    """Writes tables, however they arrive, in row groups of exactly ``ROW_GROUP`` rows, so the bytes
+    of a file do not depend on the batch sizes that fed it (an empty file gets the one empty row
+    group ``pq.write_table`` gives it)."""
+
+    def __init__(self, dest: Path, schema: pa.Schema):
+        self.writer, self.schema, self.pending, self.buffered, self.rows = pq.ParquetWriter(dest, schema), schema, [], 0, 0
+
+    def add(self, table: pa.Table) -> None:
+        if table.num_rows == 0:
+            return
+        self.pending.append(table.cast(self.schema))
+        self.buffered += table.num_rows
+        self.rows += table.num_rows
+        if self.buffered >= ROW_GROUP:
+            whole = pa.concat_tables(self.pending)
+            full = (whole.num_rows // ROW_GROUP) * ROW_GROUP
+            self.writer.write_table(whole.slice(0, full), row_group_size=ROW_GROUP)
+            rest = whole.slice(full)
+            self.pending, self.buffered = ([rest] if rest.num_rows else []), rest.num_rows
+
+    def close(self) -> None:
+        if self.pending or self.rows == 0:
+            self.writer.write_table(pa.concat_tables(self.pending) if self.pending else self.schema.empty_table(),
+                                    row_group_size=ROW_GROUP)
+        self.writer.close()
+
+
 @dataclasses.dataclass
 class Carried:
     """State carried at a watermark, to label only events after it (the job's daily path).
@@ -420,24 +448,13 @@ def _join_label_pieces(pieces: Path, root: Path, count: int) -> None:
 
 def _join_pieces(files: list[Path], dest: Path, schema: pa.Schema) -> int:
     """Concatenate Parquet files into ``dest`` in ROW_GROUP-row groups, streaming. Returns the rows."""
-    total, pending = 0, []
-    with pq.ParquetWriter(dest, schema) as writer:
-        def flush(final: bool) -> None:
-            nonlocal pending
-            tbl = pa.concat_tables(pending) if pending else None
-            while tbl is not None and (tbl.num_rows >= ROW_GROUP or (final and tbl.num_rows)):
-                writer.write_table(tbl.slice(0, ROW_GROUP), row_group_size=ROW_GROUP)
-                tbl = tbl.slice(ROW_GROUP)
-            pending = [tbl] if tbl is not None and tbl.num_rows else []
-        for f in files:
-            pf = pq.ParquetFile(f)
-            for i in range(pf.num_row_groups):
-                t = pf.read_row_group(i).cast(schema)
-                total += t.num_rows
-                pending.append(t)
-                flush(False)
-        flush(True)
-    return total
+    out = RowGroupWriter(dest, schema)
+    for f in files:
+        pf = pq.ParquetFile(f)
+        for i in range(pf.num_row_groups):
+            out.add(pf.read_row_group(i))
+    out.close()
+    return out.rows
 
 
 _CANON_COLUMNS = ("user_id", "item_id", "ts_us", "event_id", "level", "topic_id", "label", "engaged",
@@ -475,36 +492,22 @@ def _write_partitioned(run: LabelRun, root: Path) -> int:
     t = run.labels.mutate(date=run.labels.ts.date().cast("string"))
     t = t.order_by([t.date] + [ibis.asc(t[k], nulls_first=False) for k in SORT_KEYS])
     root.mkdir(parents=True)
-    total, writer, current, pending = 0, None, None, []
-
-    def flush(final: bool) -> None:
-        nonlocal pending
-        if not pending:
-            return
-        tbl = pa.concat_tables(pending)
-        while tbl.num_rows >= ROW_GROUP or (final and tbl.num_rows):
-            writer.write_table(tbl.slice(0, ROW_GROUP), row_group_size=ROW_GROUP)
-            tbl = tbl.slice(ROW_GROUP)
-        pending = [tbl] if tbl.num_rows else []
-
+    total, out, current = 0, None, None
     for batch in run.engine.to_batches(t):
         dates = batch.column(batch.schema.get_field_index("date"))
         for date in pc.unique(dates).to_pylist():
             part = pa.Table.from_batches([batch.filter(pc.equal(dates, date))]).drop_columns(
                 ["date", "ts_us"])
             if date != current:
-                flush(True)
-                if writer is not None:
-                    writer.close()
+                if out is not None:
+                    out.close()
                 (root / f"date={date}").mkdir()
-                writer = pq.ParquetWriter(root / f"date={date}" / "part-0.parquet", LABELS_SCHEMA)
+                out = RowGroupWriter(root / f"date={date}" / "part-0.parquet", LABELS_SCHEMA)
                 current = date
-            pending.append(_finish_labels(part, run.taxonomy_version, run.labels_version))
+            out.add(_finish_labels(part, run.taxonomy_version, run.labels_version))
             total += part.num_rows
-            flush(False)
-    flush(True)
-    if writer is not None:
-        writer.close()
+    if out is not None:
+        out.close()
     return total
 
 

@@ -8,6 +8,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import labeler.job.outputs as outputs
+import labeler.labelling as labelling
 
 SCHEMA = pa.schema([("user_id", pa.string()), ("k", pa.int64())])
 
@@ -32,6 +33,7 @@ def test_streamed_merge_writes_the_bytes_of_one_sorted_write(tmp_path_factory, o
     new_t = _rows((u, 10 + k) for u, n in new.items() for k in range(n))
     mp = pytest.MonkeyPatch()
     mp.setattr(outputs, "ROW_GROUP", group)
+    mp.setattr(labelling, "ROW_GROUP", group)
     try:
         pq.write_table(old_t, tmp / "prev.parquet", row_group_size=group)
         aged = lambda t: t.set_column(1, "k", pa.compute.add(t.column("k"), 100))  # noqa: E731

@@ -9,6 +9,7 @@ re-run after a crash never see a half-written one.
 from __future__ import annotations
 
 import bisect
+import contextlib
 import logging
 import os
 import shutil
@@ -19,7 +20,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from ..labelling import FOOTPRINTS_SCHEMA, LABELS_SCHEMA, ROW_GROUP
+from ..labelling import FOOTPRINTS_SCHEMA, LABELS_SCHEMA, ROW_GROUP, RowGroupWriter
 from . import failpoints
 
 log = logging.getLogger(__name__)
@@ -29,15 +30,26 @@ FOOTPRINT_SORT = [(k, "ascending", "at_end") for k in ("user_id", "level", "topi
 USERS_SCHEMA = pa.schema([("user_id", pa.string()), ("history_len", pa.int64())])
 
 
-def write_table(table: pa.Table, dest: Path, point: str) -> None:
-    """Write one Parquet file atomically (temp file, fsync, rename), fixed row groups."""
+@contextlib.contextmanager
+def _atomic(dest: Path, point: str):
+    """A temporary path beside ``dest``; on success fsynced and renamed onto ``dest``, on failure removed."""
     dest.parent.mkdir(parents=True, exist_ok=True)
     tmp = dest.with_name(f".{dest.name}.{uuid.uuid4().hex}")
     failpoints.hit(point)
-    pq.write_table(table, tmp, row_group_size=ROW_GROUP)
+    try:
+        yield tmp
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
     with open(tmp, "rb") as fh:
         os.fsync(fh.fileno())
     os.replace(tmp, dest)
+
+
+def write_table(table: pa.Table, dest: Path, point: str) -> None:
+    """Write one Parquet file atomically (temp file, fsync, rename), fixed row groups."""
+    with _atomic(dest, point) as tmp:
+        pq.write_table(table, tmp, row_group_size=ROW_GROUP)
 
 
 def _sorted(table: pa.Table, keys) -> pa.Table:
@@ -185,66 +197,39 @@ def write_merged(prev: Path | None, drop: pa.Array | None, new: pa.Table, aged, 
     batches in order, written as they come). Row groups hold exactly ``ROW_GROUP`` rows, as one
     ``write_table`` of the whole would, so the bytes do not depend on how the rows arrived.
     Returns the number of rows written."""
-    dest.parent.mkdir(parents=True, exist_ok=True)
-    tmp = dest.with_name(f".{dest.name}.{uuid.uuid4().hex}")
-    failpoints.hit(point)
-    out = _RowGroups(pq.ParquetWriter(tmp, schema), schema)
-    try:
-        if prev is None:
-            for piece in ([new] if isinstance(new, pa.Table) else new):
-                out.add(piece if isinstance(piece, pa.Table) else pa.Table.from_batches([piece]))
-        else:
-            ids = new.column("user_id").to_pylist()
-            gone = sorted(drop.to_pylist()) if drop is not None else []
-            taken = 0
-            for batch in pq.ParquetFile(prev).iter_batches(batch_size=ROW_GROUP):
-                old = pa.Table.from_batches([batch])
-                if old.num_rows and gone:  # only the dropped ids inside this batch's range of users
-                    first, last = old.column("user_id")[0].as_py(), old.column("user_id")[-1].as_py()
-                    inside = gone[bisect.bisect_left(gone, first):bisect.bisect_right(gone, last)]
-                    old = _without(old, pa.array(inside, pa.string())) if inside else old
-                old = aged(old).cast(schema)
-                if old.num_rows == 0:
-                    continue
-                upto = bisect.bisect_right(ids, old.column("user_id")[-1].as_py())  # new users up to this batch's last
-                out.add(merge_by_user(old, new.slice(taken, upto - taken)) if upto > taken else old)
-                taken = upto
-            out.add(new.slice(taken))
+    with _atomic(dest, point) as tmp:
+        out = RowGroupWriter(tmp, schema)
+        try:
+            if prev is None:
+                for piece in ([new] if isinstance(new, pa.Table) else new):
+                    out.add(piece if isinstance(piece, pa.Table) else pa.Table.from_batches([piece]))
+            else:
+                _merge_previous(out, prev, drop, new, aged, schema)
+        except BaseException:
+            out.writer.close()
+            raise
         out.close()
-    except BaseException:
-        out.writer.close()
-        tmp.unlink(missing_ok=True)
-        raise
-    with open(tmp, "rb") as fh:
-        os.fsync(fh.fileno())
-    os.replace(tmp, dest)
     return out.rows
 
 
-class _RowGroups:
-    """Buffers tables and writes them in row groups of exactly ``ROW_GROUP`` rows."""
-
-    def __init__(self, writer: pq.ParquetWriter, schema: pa.Schema):
-        self.writer, self.schema, self.pending, self.buffered, self.rows = writer, schema, [], 0, 0
-
-    def add(self, table: pa.Table) -> None:
-        if table.num_rows == 0:
-            return
-        self.pending.append(table.cast(self.schema))
-        self.buffered += table.num_rows
-        self.rows += table.num_rows
-        if self.buffered >= ROW_GROUP:
-            whole = pa.concat_tables(self.pending)
-            full = (whole.num_rows // ROW_GROUP) * ROW_GROUP
-            self.writer.write_table(whole.slice(0, full), row_group_size=ROW_GROUP)
-            rest = whole.slice(full)
-            self.pending, self.buffered = ([rest] if rest.num_rows else []), rest.num_rows
-
-    def close(self) -> None:
-        if self.pending or self.rows == 0:  # an empty file gets the empty row group write_table gives it
-            self.writer.write_table(pa.concat_tables(self.pending) if self.pending else self.schema.empty_table(),
-                                    row_group_size=ROW_GROUP)
-        self.writer.close()
+def _merge_previous(out: RowGroupWriter, prev: Path, drop: pa.Array | None, new: pa.Table, aged,
+                    schema: pa.Schema) -> None:
+    ids = new.column("user_id").to_pylist()
+    gone = sorted(drop.to_pylist()) if drop is not None else []
+    taken = 0
+    for batch in pq.ParquetFile(prev).iter_batches(batch_size=ROW_GROUP):
+        old = pa.Table.from_batches([batch])
+        if old.num_rows and gone:  # only the dropped ids inside this batch's range of users
+            first, last = old.column("user_id")[0].as_py(), old.column("user_id")[-1].as_py()
+            inside = gone[bisect.bisect_left(gone, first):bisect.bisect_right(gone, last)]
+            old = _without(old, pa.array(inside, pa.string())) if inside else old
+        old = aged(old).cast(schema)
+        if old.num_rows == 0:
+            continue
+        upto = bisect.bisect_right(ids, old.column("user_id")[-1].as_py())  # new users up to this batch's last
+        out.add(merge_by_user(old, new.slice(taken, upto - taken)) if upto > taken else old)
+        taken = upto
+    out.add(new.slice(taken))
 
 
 def merge_by_user(a: pa.Table, b: pa.Table) -> pa.Table:

@@ -4,7 +4,7 @@ A full publish writes every shard whose content changed. A publish of the users 
 (``changed_users``, the job's daily path) writes, per shard holding such users, one small delta
 layer with just their rows, and hard-links the shard's base file and earlier layers; readers look
 a user up in the newest layer that holds them. A shard whose layers would pass ``max_layers``, or
-hold more topic rows than ``compact_share`` of its base, is compacted: its layers are merged into a new
+hold more rows than ``compact_share`` of its base, is compacted: its layers are merged into a new
 base file. So a day's publish costs what the day changed, and a lookup stays a few B-tree probes.
 """
 from __future__ import annotations
@@ -72,7 +72,7 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
         footprints = run.footprints_frame()
         history = run.history_frame() if history is None else history
     root = Path(path)
-    previous = read_manifest(root, current_name(root), any_format=True) if (root / "CURRENT").exists() else None
+    previous = _current_manifest(root)
     if content_key is not None and previous is not None and previous.get("content_key") == content_key:
         log.info("store snapshot %s already holds this publish (content key %s); nothing written",
                  previous["name"], content_key[:12])
@@ -172,11 +172,16 @@ def _file_records(tmp: Path, prev_dir: Path | None, previous: dict | None, pool)
     return dict(sorted(records.items()))
 
 
+def _current_manifest(root: Path) -> dict | None:
+    """The manifest of the store's current snapshot, of any format; None before the first publish."""
+    return read_manifest(root, current_name(root), any_format=True) if (root / "CURRENT").exists() else None
+
+
 def publishes_layered(path, shards: int, taxonomy, config: LabelConfig) -> bool:
     """Whether a publish with ``changed_users`` into the store at ``path`` would write delta layers
     (and so needs only the changed users' rows), rather than every user's."""
     root = Path(path)
-    previous = read_manifest(root, current_name(root), any_format=True) if (root / "CURRENT").exists() else None
+    previous = _current_manifest(root)
     return _layerable(previous, shards, taxonomy, config)
 
 
