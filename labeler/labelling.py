@@ -419,7 +419,7 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
         bar.update(piece_rows)
     bar.close()
     _join_label_pieces(tmp / "pieces", tmp / "labels", len(ranges))
-    fp_rows = _join_pieces(fp_files, tmp / "footprints.parquet", FOOTPRINTS_SCHEMA)
+    fp_rows = join_pieces(fp_files, tmp / "footprints.parquet", FOOTPRINTS_SCHEMA)
     shutil.rmtree(tmp / "pieces")
     counts = {}
     for p in parts:
@@ -443,11 +443,12 @@ def _join_label_pieces(pieces: Path, root: Path, count: int) -> None:
     for date in dates:
         files = [pieces / f"{k:06d}" / date / "part-0.parquet" for k in range(count)]
         (root / date).mkdir()
-        _join_pieces([f for f in files if f.exists()], root / date / "part-0.parquet", LABELS_SCHEMA)
+        join_pieces([f for f in files if f.exists()], root / date / "part-0.parquet", LABELS_SCHEMA)
 
 
-def _join_pieces(files: list[Path], dest: Path, schema: pa.Schema) -> int:
+def join_pieces(files: list[Path], dest: Path, schema: pa.Schema) -> int:
     """Concatenate Parquet files into ``dest`` in ROW_GROUP-row groups, streaming. Returns the rows."""
+    dest.parent.mkdir(parents=True, exist_ok=True)
     out = RowGroupWriter(dest, schema)
     for f in files:
         pf = pq.ParquetFile(f)

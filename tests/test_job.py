@@ -40,8 +40,9 @@ def write_days(ev: pd.DataFrame, folder: Path, dates) -> None:
 
 def make_config(root: Path, work: str = "work", **run) -> JobConfig:
     labels = run.pop("labels", {})
+    engine = {"memory_limit": "1GB", "threads": 2, **run.pop("engine", {})}
     return JobConfig(items=str(root / "items.parquet"), interactions=str(root / "interactions"),
-                     work_dir=str(root / work), labels=labels, engine={"memory_limit": "1GB", "threads": 2},
+                     work_dir=str(root / work), labels=labels, engine=engine,
                      run={"taxonomy_from": "categories", **run})
 
 
@@ -128,6 +129,27 @@ def test_ten_daily_runs_equal_one_full_run(tmp_path, scenario, name):
     run_job(make_config(root, work="full", labels=CONFIGS[name]))
     assert_same_outputs(root / "work", root / "full")
     assert_same_store_answers(root / "work", root / "full", ev)
+
+
+@pytest.mark.parametrize("name", ["defaults", "support3_memory10_any_new", "warmup4_engaged_boost",
+                                  "label_from_inside_the_new_days"])
+def test_a_full_run_in_pieces_writes_the_bytes_of_one_pass(tmp_path, scenario, name):
+    """A full run over more than engine.bucket_rows interactions is labelled one range of users at
+    a time and the pieces joined: the outputs and the store are the bytes of one pass, and daily
+    runs continue from it as from a one-pass run."""
+    root, dates = setup_root(tmp_path, scenario, 25)
+    _, ev = scenario
+    pieces = make_config(root, labels=CONFIGS[name], engine={"bucket_rows": 700})
+    one = make_config(root, work="one", labels=CONFIGS[name])
+    m = run_job(pieces).manifest
+    run_job(one)
+    assert m["mode"] == "full" and not list((root / "work" / "outputs").glob(".pieces-*"))
+    assert_same_outputs(root / "work", root / "one")
+    assert store_files(root / "work") == store_files(root / "one")
+    write_days(ev, root / "interactions", dates[25:27])
+    assert run_job(pieces).manifest["mode"] == "incremental"
+    run_job(one)
+    assert_same_outputs(root / "work", root / "one")
 
 
 def assert_same_store_answers(a: Path, b: Path, ev: pd.DataFrame) -> None:

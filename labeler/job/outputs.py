@@ -20,7 +20,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from ..labelling import FOOTPRINTS_SCHEMA, LABELS_SCHEMA, ROW_GROUP, RowGroupWriter
+from ..labelling import FOOTPRINTS_SCHEMA, LABELS_SCHEMA, ROW_GROUP, RowGroupWriter, join_pieces
 from . import failpoints
 
 log = logging.getLogger(__name__)
@@ -187,6 +187,25 @@ class GenerationWriter:
                                       lambda t: t, USERS_SCHEMA, self.gen / "users.parquet", "write_footprints")
         self.new_footprints = fp if isinstance(fp, pa.Table) else None
         self.new_people = us
+
+    def join(self, pieces: list["GenerationWriter"]) -> None:
+        """Fill this (new, empty) generation with ``pieces``: generations of disjoint ranges of
+        users, in id order, each written from nothing. Each file is the pieces' files concatenated
+        in that order, in the same row groups: the bytes one generation of all users would have."""
+        dates = sorted({d for w in pieces for d in w.dates_written})
+        for date in dates:
+            join_pieces([part_path(w.gen, date) for w in pieces if date in w.dates_written],
+                        part_path(self.gen, date), LABELS_SCHEMA)
+        self.footprint_rows = join_pieces([w.gen / "footprints.parquet" for w in pieces],
+                                          self.gen / "footprints.parquet", FOOTPRINTS_SCHEMA)
+        self.user_rows = join_pieces([w.gen / "users.parquet" for w in pieces], self.gen / "users.parquet",
+                                     USERS_SCHEMA)
+        for w in pieces:
+            for key, n in w.counts.items():
+                self.counts[key] = self.counts.get(key, 0) + n
+            self.rows_written += w.rows_written
+        self.dates_written = dates
+        self.new_footprints = self.new_people = None
 
 
 def write_merged(prev: Path | None, drop: pa.Array | None, new: pa.Table, aged, schema: pa.Schema, dest: Path,

@@ -15,6 +15,7 @@ A run, under the work folder's lock:
 """
 from __future__ import annotations
 
+import bisect
 import dataclasses
 import datetime as dt
 import functools
@@ -168,39 +169,39 @@ class _Run:
         eng = make_engine(cfg.engine)
         view = taxonomy_view(tax, register)
         as_of = pd.Timestamp(watermark_us, unit="us", tz="UTC")
-        user_array = pa.array(users, pa.string()) if users is not None else None
-        runs = []
-        if user_array is None or len(user_array) or not continued:  # whole histories: all, or the exact-path users
-            files = [str(work / p.events) for _, p in sorted(parts.items()) if p.rows]
-            runs.append(plan_labels(self._staged(eng, files, user_array), view, cfg.labels, engine=eng,
-                                    as_of=as_of).materialize())
-        if continued:  # the day's events only, continued from the state carried at the last watermark
-            files = [str(work / parts[n].events) for n in staged_new if parts[n].rows]
-            ids = pa.array(continued, pa.string())
-            carried = Carried(prev_gen / "footprints.parquet", prev_gen / "users.parquet", state["watermark_us"], ids)
-            runs.append(plan_labels(self._staged(eng, files, ids), view, cfg.labels, engine=eng, as_of=as_of,
-                                    carried=carried).materialize())
-        self._timed("labels", t0)
-        failpoints.hit("after_labels")
-
-        t0 = time.perf_counter()
         gen_name = f"gen-{seq:06d}"
-        people = None if user_array is None else pa.concat_arrays([user_array, pa.array(continued, pa.string())])
-        writer = GenerationWriter(work / "outputs" / gen_name, prev_gen, user_array, start_date, versions,
-                                  tax.version, people=people)
-        linked = writer.link_unchanged()
-        t = runs[0].labels if len(runs) == 1 else runs[0].labels.union(runs[1].labels, distinct=False)
-        t = t.filter(t.ts_us >= (start_us // DAY_US) * DAY_US) if start_us is not None else t
-        writer.write_stream(eng.to_batches(t.mutate(_date=t.ts.date().cast("string")).order_by("_date")))
-        writer.finish_dates()
         lab = cfg.labels
-        streamed = prev_gen is None and len(runs) == 1  # a full run: every row, in key order from the engine
-        writer.write_people(runs[0].footprint_batches() if streamed else pa.concat_tables([r.footprints_arrow()
-                                                                                          for r in runs]),
-                            pa.concat_tables([pa.Table.from_pandas(r.history_frame(), preserve_index=False)
-                                              for r in runs]),
-                            lambda tb: age_footprints(tb, watermark_us, lab.min_support, lab.memory_us))
-        self._timed("outputs", t0)
+        self._aged = functools.partial(age_footprints, watermark_us=watermark_us, min_support=lab.min_support,
+                                       memory_us=lab.memory_us)
+        files = [str(work / p.events) for _, p in sorted(parts.items()) if p.rows]
+        limit = getattr(eng.config, "bucket_rows", None)
+        total = sum(p.rows for p in parts.values())
+        if mode == "full" and limit is not None and total > limit and not hasattr(eng, "write_partitioned"):
+            writer = self._full_in_pieces(eng, view, files, as_of, work / "outputs" / gen_name, versions,
+                                          tax.version, limit, total)
+            people, linked = None, 0
+        else:
+            user_array = pa.array(users, pa.string()) if users is not None else None
+            runs = []
+            if user_array is None or len(user_array) or not continued:  # whole histories: all, or the exact-path users
+                runs.append(plan_labels(self._staged(eng, files, user_array), view, lab, engine=eng,
+                                        as_of=as_of).materialize())
+            if continued:  # the day's events only, continued from the state carried at the last watermark
+                new_files = [str(work / parts[n].events) for n in staged_new if parts[n].rows]
+                ids = pa.array(continued, pa.string())
+                carried = Carried(prev_gen / "footprints.parquet", prev_gen / "users.parquet", state["watermark_us"],
+                                  ids)
+                runs.append(plan_labels(self._staged(eng, new_files, ids), view, lab, engine=eng, as_of=as_of,
+                                        carried=carried).materialize())
+            self._timed("labels", t0)
+            failpoints.hit("after_labels")
+
+            t0 = time.perf_counter()
+            people = None if user_array is None else pa.concat_arrays([user_array, pa.array(continued, pa.string())])
+            writer = GenerationWriter(work / "outputs" / gen_name, prev_gen, user_array, start_date, versions,
+                                      tax.version, people=people)
+            linked = self._write_generation(writer, runs, start_us, streamed=prev_gen is None and len(runs) == 1)
+            self._timed("outputs", t0)
         failpoints.hit("after_outputs")
 
         t0 = time.perf_counter()
@@ -481,6 +482,75 @@ class _Run:
         if changes["added_rows"]:
             starts.append(watermark + 1)
         return sorted(exact), sorted(day_users - exact), (min(starts) if starts else None)
+
+    def _write_generation(self, writer: GenerationWriter, runs: list, start_us: int | None, streamed: bool) -> int:
+        """The labels of ``runs`` from ``start_us``'s day on, their footprints and histories, into ``writer``
+        (``streamed``: one full run, whose footprints come from the engine in key order). Returns the
+        number of previous dates linked unchanged."""
+        linked = writer.link_unchanged()
+        t = runs[0].labels if len(runs) == 1 else runs[0].labels.union(runs[1].labels, distinct=False)
+        t = t.filter(t.ts_us >= (start_us // DAY_US) * DAY_US) if start_us is not None else t
+        eng = runs[0].engine
+        writer.write_stream(eng.to_batches(t.mutate(_date=t.ts.date().cast("string")).order_by("_date")))
+        writer.finish_dates()
+        writer.write_people(runs[0].footprint_batches() if streamed else pa.concat_tables([r.footprints_arrow()
+                                                                                          for r in runs]),
+                            pa.concat_tables([pa.Table.from_pandas(r.history_frame(), preserve_index=False)
+                                              for r in runs]), self._aged)
+        return linked
+
+    def _full_in_pieces(self, eng, view, files, as_of, gen: Path, versions, tax_version, limit: int,
+                        total: int) -> GenerationWriter:
+        """A full run over more than ``engine.bucket_rows`` interactions: label one range of users at
+        a time (each piece in memory), write each piece as a generation of its own, then join them
+        in user order into ``gen``: the same bytes as one pass, with memory bounded by the piece."""
+        from tqdm import tqdm
+        from ..labelling import user_ranges
+        ev = eng.read_parquet(files)
+        counts = eng.to_arrow(ev.group_by("user_id").aggregate(n=ev.count()))
+        ranges = user_ranges(counts, limit)
+        counts = counts.take(pc.sort_indices(counts, [("user_id", "ascending")]))
+        ids = counts.column("user_id").to_pylist()
+        upto = np.concatenate([[0], np.cumsum(counts.column("n").to_numpy())])  # interactions before each id
+        log.info("full run of %d interactions of %d users in %d pieces of about %d", total, len(ids),
+                 len(ranges), limit)
+        scratch = gen.with_name(f".pieces-{gen.name}")
+        shutil.rmtree(scratch, ignore_errors=True)
+        pieces: list[GenerationWriter] = []
+        spent = {"labels": 0.0, "outputs": 0.0}
+        bar = tqdm(total=total, unit=" interactions", unit_scale=True, disable=not self.progress,
+                   desc="labelling in pieces")
+        for k, (lo, hi) in enumerate(ranges):
+            t0 = time.perf_counter()
+            sel = eng.read_parquet(files)
+            if lo is not None:
+                sel = sel.filter(sel.user_id >= lo)
+            if hi is not None:
+                sel = sel.filter(sel.user_id < hi)
+            run = plan_labels(StagedInput(sel, source=self.cfg.interactions, rows=0, content_hash="job"), view,
+                              self.cfg.labels, engine=eng, as_of=as_of).materialize()
+            t1 = time.perf_counter()
+            piece = GenerationWriter(scratch / f"{k:06d}", None, None, None, versions, tax_version)
+            self._write_generation(piece, [run], None, streamed=True)
+            for t in (run.labels, run._base):
+                if hasattr(t, "release"):
+                    t.release()
+            pieces.append(piece)
+            spent["labels"] += t1 - t0
+            spent["outputs"] += time.perf_counter() - t1
+            a = 0 if lo is None else bisect.bisect_left(ids, lo)
+            b = len(ids) if hi is None else bisect.bisect_left(ids, hi)
+            bar.update(int(upto[b] - upto[a]))
+            bar.set_postfix_str(f"piece {k + 1}/{len(ranges)}")
+        bar.close()
+        self.timings["labels"] = round(spent["labels"], 3)
+        failpoints.hit("after_labels")
+        t0 = time.perf_counter()
+        writer = GenerationWriter(gen, None, None, None, versions, tax_version)
+        writer.join(pieces)
+        shutil.rmtree(scratch)
+        self.timings["outputs"] = round(spent["outputs"] + time.perf_counter() - t0, 3)
+        return writer
 
     def _staged(self, eng, files: list[str], users: pa.Array | None) -> StagedInput:
         """Staged events of ``files`` as an engine table, cut to ``users`` when given."""
