@@ -9,6 +9,7 @@ from __future__ import annotations
 import hashlib
 import logging
 import os
+import sys
 import tempfile
 import uuid
 from pathlib import Path
@@ -17,6 +18,8 @@ import ibis
 import ibis.expr.datatypes as dt
 import pandas as pd
 import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
 
 from .config import EngineConfig
 from .errors import ConfigError, EngineError
@@ -74,6 +77,18 @@ class Engine:
 
     def to_batches(self, expr, rows: int = 65_536):
         return self.con.to_pyarrow_batches(expr, chunk_size=rows)
+
+    def sorted_batches(self, expr, keys: list[str], rows: int = 65_536):
+        """The rows of ``expr`` ordered by ``keys`` (nulls last), as Arrow record batches that
+        arrive one at a time: memory follows a batch, not the table."""
+        return self.to_batches(expr.order_by([ibis.asc(expr[k], nulls_first=False) for k in keys]), rows)
+
+    def write_groups(self, expr, key: str, write):
+        """For each distinct value of the string column ``key``: ``write(value, rows)`` with all of that
+        value's rows (an Arrow table, ``key`` dropped), once; yields (value, what it returned) as
+        each group is done. Here the rows stream through this process in key order; a distributed
+        engine calls ``write`` on its workers (so it must be picklable, and its files reachable)."""
+        yield from _groups(self.to_batches(expr.order_by(key)), key, write)
 
 
 class DuckDBEngine(Engine):
@@ -158,6 +173,8 @@ class SparkEngine(Engine):
                 conf["spark.local.dir"] = cfg.temp_dir
             conf.update(cfg.spark_conf)
             master = cfg.spark_master or os.environ.get("SPARK_MASTER") or "local[*]"
+            if master.startswith("local"):  # the workers run this interpreter, which has labeler installed
+                os.environ.setdefault("PYSPARK_PYTHON", sys.executable)
             builder = SparkSession.builder.appName("labeler").master(master)
             for k, v in conf.items():
                 builder = builder.config(k, v)
@@ -197,6 +214,36 @@ class SparkEngine(Engine):
         sdf.select(*schema.names, "date").write.partitionBy("date").parquet(str(root))
         sdf.unpersist()
         return n
+
+    def sorted_batches(self, expr, keys: list[str], rows: int = 65_536):
+        """Sorted on the executors (a range shuffle), each task writing its range of rows to a
+        Parquet file in a scratch folder (``temp_dir``; on a cluster, storage the driver can
+        read), then read back here one batch at a time, in range order: nothing is collected."""
+        import shutil
+        from pyspark.sql import functions as F
+        sdf = self.session.sql(self.con.compile(expr))
+        order = [F.col(k).asc_nulls_last() for k in keys]
+        scratch = Path(self.config.temp_dir or tempfile.gettempdir())
+        scratch.mkdir(parents=True, exist_ok=True)
+        folder = Path(tempfile.mkdtemp(prefix="labeler-sorted-", dir=scratch))
+        try:
+            sdf.repartitionByRange(*order).sortWithinPartitions(*order).mapInArrow(
+                _RangeWriter(str(folder)), "part int, rows long").collect()
+            for path in sorted(folder.glob("part-*.parquet")):
+                yield from pq.ParquetFile(path).iter_batches(batch_size=rows)
+        finally:
+            shutil.rmtree(folder, ignore_errors=True)
+
+    def write_groups(self, expr, key: str, write):
+        """One shuffle by ``key``; each executor task calls ``write`` on its groups' rows and sends
+        back only what ``write`` returns (pickled): the rows never reach the driver."""
+        import pickle
+        from pyspark.sql import functions as F
+        sdf = self.session.sql(self.con.compile(expr))
+        sdf = sdf.repartition(F.col(key)).sortWithinPartitions(F.col(key))
+        got = sdf.mapInArrow(_GroupWriter(key, write), "value string, result binary").collect()
+        for row in sorted(got, key=lambda r: r["value"]):
+            yield row["value"], pickle.loads(row["result"])
 
     def content_sums(self, expr, columns) -> tuple[int, int, int]:
         """The same canonical row sums as DuckDBEngine.content_sums, in Spark SQL."""
@@ -243,6 +290,56 @@ def canonical_row(schema, dialect: str) -> str:
             txt = f"CAST({col} AS {text_type})"
         parts.append(f"COALESCE({txt}, {null})")
     return " || chr(31) || ".join(parts)
+
+
+def _groups(batches, key: str, write):
+    """Runs of equal ``key`` in batches ordered by it: (value, write(value, rows)) for each run."""
+    pending, current = [], None
+    for batch in batches:
+        tb = pa.Table.from_batches([batch]) if isinstance(batch, pa.RecordBatch) else batch
+        values = tb.column(key)
+        for value in pc.unique(values).to_pylist():
+            if value != current and pending:
+                yield current, write(current, pa.concat_tables(pending))
+                pending = []
+            current = value
+            pending.append(tb.filter(pc.equal(values, value)).drop_columns([key]))
+    if pending:
+        yield current, write(current, pa.concat_tables(pending))
+
+
+class _GroupWriter:
+    """The executor side of SparkEngine.write_groups (a picklable callable for mapInArrow)."""
+
+    def __init__(self, key: str, write):
+        self.key, self.write = key, write
+
+    def __call__(self, batches):
+        import pickle
+        for value, result in _groups(batches, self.key, self.write):
+            yield pa.RecordBatch.from_pydict({"value": [value], "result": [pickle.dumps(result)]})
+
+
+class _RangeWriter:
+    """The executor side of SparkEngine.sorted_batches: a task's rows, as they come, into one file."""
+
+    def __init__(self, folder: str):
+        self.folder = folder
+
+    def __call__(self, batches):
+        from pyspark import TaskContext
+        part = TaskContext.get().partitionId()
+        writer, rows = None, 0
+        for batch in batches:
+            if batch.num_rows == 0:
+                continue
+            if writer is None:
+                writer = pq.ParquetWriter(os.path.join(self.folder, f"part-{part:06d}.parquet"), batch.schema)
+            writer.write_batch(batch)
+            rows += batch.num_rows
+        if writer is not None:
+            writer.close()
+        yield pa.RecordBatch.from_pydict({"part": pa.array([part], pa.int32()), "rows": pa.array([rows], pa.int64())})
 
 
 def _spark_type(t: pa.DataType) -> str:

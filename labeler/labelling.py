@@ -221,15 +221,24 @@ class LabelRun:
         if self.written is not None:
             yield from pq.ParquetFile(self.written["footprints"]).iter_batches(batch_size=rows)
             return
-        t = self.footprints
-        for batch in self.engine.to_batches(t.order_by([t.user_id, t.level, t.topic_id]), rows):
+        for batch in self.engine.sorted_batches(self.footprints, ["user_id", "level", "topic_id"], rows):
             yield from _finish_footprints(pa.Table.from_batches([batch])).to_batches()
 
     def history_frame(self) -> pd.DataFrame:
         """user_id, history_len: each user's interactions up to ``as_of_us`` (unplaced ones included)."""
+        return self.history_arrow().to_pandas()
+
+    def history_arrow(self) -> pa.Table:
         if self.written is not None:
-            return self.written["history"].to_pandas()
-        return self.engine.to_pandas(self.history)
+            return self.written["history"]
+        return self.engine.to_arrow(self.history)
+
+    def history_batches(self, rows: int = 65_536):
+        """The histories in user order as Arrow record batches, streamed from the engine."""
+        if self.written is not None:
+            yield from self.written["history"].sort_by("user_id").to_batches(rows)
+            return
+        yield from self.engine.sorted_batches(self.history, ["user_id"], rows)
 
     def footprints_frame(self) -> pd.DataFrame:
         return self.footprints_arrow().to_pandas()
@@ -407,7 +416,7 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
         n += _write_partitioned(sub, tmp / "pieces" / f"{k:06d}")
         fp_files.append(tmp / "pieces" / f"fp-{k:06d}.parquet")
         pq.write_table(sub.footprints_arrow(), fp_files[-1])
-        histories.append(pa.Table.from_pandas(sub.history_frame(), preserve_index=False))
+        histories.append(sub.history_arrow())
         parts.append(sub.summary_parts())
         sums = [x + y for x, y in zip(sums, eng.content_sums(sub.labels, _CANON_COLUMNS))]
         for t in (sub.labels, sub._base):

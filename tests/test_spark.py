@@ -68,10 +68,17 @@ def test_cli_label_on_spark_writes_the_same_rows(cli, fixtures, tmp_path, spark_
         assert x.classify(user, sorted(set(a["item_id"]))) == y.classify(user, sorted(set(a["item_id"])))
 
 
-def test_job_on_spark_writes_duckdbs_bytes(tmp_path, spark_engine):
+def test_job_on_spark_writes_duckdbs_bytes(tmp_path, spark_engine, monkeypatch):
     """The scheduled job with engine = "spark": after a first and an incremental run, its outputs
-    are byte-identical to the same runs on DuckDB (the job writes its own Parquet files)."""
+    are byte-identical to the same runs on DuckDB (the job writes its own Parquet files), and the
+    label rows and a full run's footprints and histories are written from the executors: no row
+    stream is ever collected to the driver (streaming one would fail this test)."""
     from labeler import JobConfig
+    from labeler.engines import SparkEngine
+
+    def no_collect(self, expr, rows=65_536):
+        raise AssertionError("the job streamed rows from Spark to the driver")
+    monkeypatch.setattr(SparkEngine, "to_batches", no_collect)
     from labeler.demo import generate_scenario, write_daily
     from labeler.job import run_job
     from test_job import assert_same_outputs

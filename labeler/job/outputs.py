@@ -110,51 +110,26 @@ class GenerationWriter:
 
     def write_date(self, date: str, new_rows: pa.Table | None) -> None:
         """Date ``date``: the previous rows of users not re-labelled, plus ``new_rows``."""
-        pieces = []
-        old = part_path(self.prev, date) if self.prev is not None else None
-        if old is not None and old.exists():
-            prev = pq.read_table(old)
-            pieces.append(_without(prev, self.users) if self.users is not None else prev.slice(0, 0))
-        if new_rows is not None and new_rows.num_rows:
-            pieces.append(self._finish(new_rows, date))
+        self._took(date, DateWriter(self.gen, self.prev, self.users, self.versions, self.taxonomy_version)(
+            date, new_rows))
+
+    def _took(self, date: str, done: dict) -> None:
         self._done.add(date)
-        if not pieces:
-            return
-        table = pa.concat_tables([p.select(LABELS_SCHEMA.names).cast(LABELS_SCHEMA) for p in pieces])
-        if table.num_rows == 0:
-            return
-        n = table.num_rows
-        version = self.versions(date)
-        table = table.set_column(table.schema.get_field_index("labels_version"), "labels_version",
-                                 pa.array([version] * n, pa.string()))
-        table = _sorted(table, LABEL_SORT)
-        write_table(table, part_path(self.gen, date), "write_labels")
-        self.dates_written.append(date)
-        if len(self.dates_written) == 1:
-            failpoints.hit("mid_labels_write")
+        for key, n in done["counts"].items():
+            self.counts[key] = self.counts.get(key, 0) + n
+        self.rows_written += done["rows"]
+        if done["written"]:
+            self.dates_written.append(date)
+            if len(self.dates_written) == 1:
+                failpoints.hit("mid_labels_write")
 
-    def write_stream(self, batches) -> None:
-        """Write the re-labelled rows from Arrow batches ordered by a string ``_date`` column."""
-        pending, current = [], None
-        for batch in batches:
-            tb = pa.Table.from_batches([batch])
-            dates = tb.column("_date")
-            for date in pc.unique(dates).to_pylist():
-                if date != current and pending:
-                    self.write_date(current, pa.concat_tables(pending))
-                    pending = []
-                current = date
-                pending.append(tb.filter(pc.equal(dates, date)).drop_columns(["_date", "ts_us"]))
-        if pending:
-            self.write_date(current, pa.concat_tables(pending))
-
-    def _finish(self, rows: pa.Table, date: str) -> pa.Table:
-        n = rows.num_rows
-        for level, label in zip(rows.column("level").to_pylist(), rows.column("label").to_pylist()):
-            self.counts[(level, label)] = self.counts.get((level, label), 0) + 1
-        self.rows_written += n
-        rows = rows.append_column("taxonomy_version", pa.array([self.taxonomy_version] * n, pa.string()))
-        return rows.append_column("labels_version", pa.array([""] * n, pa.string()))
+    def write_stream(self, engine, expr) -> None:
+        """Write the re-labelled rows of ``expr`` (with a string ``_date`` column), one date at a
+        time, through ``engine.write_groups``: a distributed engine writes them from its workers."""
+        writer = DateWriter(self.gen, self.prev, self.users, self.versions, self.taxonomy_version)
+        for date, done in engine.write_groups(expr, "_date", writer):
+            self._took(date, done)
+        self.dates_written.sort()
 
     def finish_dates(self) -> None:
         """Rewrite the previous dates from the first change on that had no new rows."""
@@ -178,7 +153,12 @@ class GenerationWriter:
             raise ValueError("a stream of footprint batches is written only into a generation of its own")
         else:  # batches already in key order (a full run streamed from the engine)
             fp = footprints
-        us = _sorted(users.cast(USERS_SCHEMA), [("user_id", "ascending", "at_end")])
+        if isinstance(users, pa.Table):
+            us = _sorted(users.cast(USERS_SCHEMA), [("user_id", "ascending", "at_end")])
+        elif merge:
+            raise ValueError("a stream of history batches is written only into a generation of its own")
+        else:
+            us = (pa.Table.from_batches([b]).cast(USERS_SCHEMA) for b in users)
         self.footprint_rows = write_merged(self.prev / "footprints.parquet" if merge else None, self.people, fp,
                                            aged, FOOTPRINTS_SCHEMA, self.gen / "footprints.parquet",
                                            "write_footprints")
@@ -186,7 +166,7 @@ class GenerationWriter:
         self.user_rows = write_merged(self.prev / "users.parquet" if merge else None, self.people, us,
                                       lambda t: t, USERS_SCHEMA, self.gen / "users.parquet", "write_footprints")
         self.new_footprints = fp if isinstance(fp, pa.Table) else None
-        self.new_people = us
+        self.new_people = us if isinstance(us, pa.Table) else None
 
     def join(self, pieces: list["GenerationWriter"]) -> None:
         """Fill this (new, empty) generation with ``pieces``: generations of disjoint ranges of
@@ -206,6 +186,43 @@ class GenerationWriter:
             self.rows_written += w.rows_written
         self.dates_written = dates
         self.new_footprints = self.new_people = None
+
+
+class DateWriter:
+    """Writes one date's label file of a generation: the previous generation's rows of that date,
+    less the re-labelled ``users`` (None: everyone), plus the new rows. Picklable, so a
+    distributed engine runs it where the rows are; returns the counts the run manifest needs."""
+
+    def __init__(self, gen: Path, prev: Path | None, users: pa.Array | None, versions, taxonomy_version: str):
+        self.gen, self.prev, self.users = gen, prev, users
+        self.versions, self.taxonomy_version = versions, taxonomy_version
+
+    def __call__(self, date: str, new_rows: pa.Table | None) -> dict:
+        done = {"counts": {}, "rows": 0, "written": False}
+        pieces = []
+        old = part_path(self.prev, date) if self.prev is not None else None
+        if old is not None and old.exists():
+            prev = pq.read_table(old)
+            pieces.append(_without(prev, self.users) if self.users is not None else prev.slice(0, 0))
+        if new_rows is not None and new_rows.num_rows:
+            new_rows = new_rows.drop_columns([c for c in ("ts_us",) if c in new_rows.column_names])
+            by = new_rows.group_by(["level", "label"]).aggregate([("label", "count")])
+            done["counts"] = {(int(lv), lb): int(n) for lv, lb, n in zip(
+                by.column("level").to_pylist(), by.column("label").to_pylist(), by.column("label_count").to_pylist())}
+            done["rows"] = n = new_rows.num_rows
+            new_rows = new_rows.append_column("taxonomy_version", pa.array([self.taxonomy_version] * n, pa.string()))
+            pieces.append(new_rows.append_column("labels_version", pa.array([""] * n, pa.string())))
+        if not pieces:
+            return done
+        table = pa.concat_tables([p.select(LABELS_SCHEMA.names).cast(LABELS_SCHEMA) for p in pieces])
+        if table.num_rows == 0:
+            return done
+        n = table.num_rows
+        table = table.set_column(table.schema.get_field_index("labels_version"), "labels_version",
+                                 pa.array([self.versions(date)] * n, pa.string()))
+        write_table(_sorted(table, LABEL_SORT), part_path(self.gen, date), "write_labels")
+        done["written"] = True
+        return done
 
 
 def write_merged(prev: Path | None, drop: pa.Array | None, new: pa.Table, aged, schema: pa.Schema, dest: Path,

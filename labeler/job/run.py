@@ -39,12 +39,12 @@ from ..config import JobConfig
 from ..engines import make_engine
 from ..errors import ConfigError, EngineError, InputError, RejectedError
 from ..intake import Staged as StagedInput
-from ..labelling import Carried, plan_labels
+from ..labelling import FOOTPRINTS_SCHEMA, Carried, plan_labels
 from ..tables import normalize_items, read_table
 from ..taxonomy import Taxonomy, build_taxonomy
 from . import failpoints
 from .lock import RunLock
-from .outputs import GenerationWriter, age_footprints, write_table
+from .outputs import USERS_SCHEMA, GenerationWriter, age_footprints, write_table
 from .partitions import DAY_US, Staged, discover, stage
 from .register import first_register, read_register, register_hash_by_day, taxonomy_view, text_hashes, update_register
 from .state import STATE_FORMAT, load_state, write_json
@@ -81,6 +81,29 @@ def run_job(config: JobConfig, *, full: bool = False, rebuild_taxonomy: bool = F
                 raise EngineError(f"{work}: disk full while writing ({exc.strerror}). Nothing was committed: "
                                   "the previous state and outputs are intact. Free space and run again.") from None
             raise
+
+
+@dataclasses.dataclass
+class DateVersions:
+    """labels_version of an output date (see ``_Run._versions``); picklable, for engines that write
+    a generation's dates on their workers."""
+
+    days: np.ndarray
+    reg_hashes: list[str]
+    head: str
+    spans: list[tuple[int, str, str]]
+
+    def __call__(self, date: str) -> str:
+        end = _day_start(date) + DAY_US
+        k = int(np.searchsorted(self.days, end, side="left")) - 1
+        reg = self.reg_hashes[k] if k >= 0 else "none"
+        inputs = ",".join(f"{n}:{h}" for lo, n, h in sorted(self.spans, key=lambda s: s[1]) if lo < end)
+        return hashlib.sha256(f"{self.head}\x00{reg}\x00{inputs}".encode()).hexdigest()
+
+
+def _table(batches, schema: pa.Schema) -> pa.Table:
+    """Record batches (in order) as one table of ``schema``."""
+    return pa.concat_tables([pa.Table.from_batches([b]).cast(schema) for b in batches] or [schema.empty_table()])
 
 
 def _day(us: int) -> str:
@@ -490,13 +513,16 @@ class _Run:
         linked = writer.link_unchanged()
         t = runs[0].labels if len(runs) == 1 else runs[0].labels.union(runs[1].labels, distinct=False)
         t = t.filter(t.ts_us >= (start_us // DAY_US) * DAY_US) if start_us is not None else t
-        eng = runs[0].engine
-        writer.write_stream(eng.to_batches(t.mutate(_date=t.ts.date().cast("string")).order_by("_date")))
+        writer.write_stream(runs[0].engine, t.mutate(_date=t.ts.date().cast("string")))
         writer.finish_dates()
-        writer.write_people(runs[0].footprint_batches() if streamed else pa.concat_tables([r.footprints_arrow()
-                                                                                          for r in runs]),
-                            pa.concat_tables([pa.Table.from_pandas(r.history_frame(), preserve_index=False)
-                                              for r in runs]), self._aged)
+        if streamed:
+            writer.write_people(runs[0].footprint_batches(), runs[0].history_batches(), self._aged)
+        else:
+            # the changed users' rows only (bounded by the day): read here, from files a distributed
+            # engine's workers wrote, to merge into the previous generation's files in one pass
+            writer.write_people(pa.concat_tables([_table(r.footprint_batches(), FOOTPRINTS_SCHEMA) for r in runs]),
+                                pa.concat_tables([_table(r.history_batches(), USERS_SCHEMA) for r in runs]),
+                                self._aged)
         return linked
 
     def _full_in_pieces(self, eng, view, files, as_of, gen: Path, versions, tax_version, limit: int,
@@ -566,15 +592,7 @@ class _Run:
         days, reg_hashes = register_hash_by_day(register)
         head = "\x00".join([tax.version, self.cfg.labels.canonical_json(), __version__])
         spans = sorted((p.min_ts_us, n, p.hash) for n, p in parts.items() if p.rows and p.min_ts_us is not None)
-
-        @functools.lru_cache(maxsize=None)
-        def version(date: str) -> str:
-            end = _day_start(date) + DAY_US
-            k = int(np.searchsorted(days, end, side="left")) - 1
-            reg = reg_hashes[k] if k >= 0 else "none"
-            inputs = ",".join(f"{n}:{h}" for lo, n, h in sorted(spans, key=lambda s: s[1]) if lo < end)
-            return hashlib.sha256(f"{head}\x00{reg}\x00{inputs}".encode()).hexdigest()
-        return version
+        return DateVersions(days, list(reg_hashes), head, spans)
 
     # -- cleaning -------------------------------------------------------------------------------
     def _clean(self, state) -> None:
