@@ -37,11 +37,11 @@ def run_job_child(cfg: JobConfig, full: bool = False) -> tuple[dict, float, floa
     import subprocess
     code = ("import json, resource, sys; from labeler import JobConfig; from labeler.job import run_job\n"
             "m = run_job(JobConfig.model_validate_json(sys.argv[1]), full=sys.argv[2] == '1').manifest\n"
-            "print(json.dumps({'manifest': m, 'rss_kib': resource.getrusage(resource.RUSAGE_SELF).ru_maxrss}))")
+            "print('RESULT', json.dumps({'manifest': m, 'rss_kib': resource.getrusage(resource.RUSAGE_SELF).ru_maxrss}))")
     t0 = time.perf_counter()
     out = subprocess.run([sys.executable, "-c", code, cfg.model_dump_json(), "1" if full else "0"],
                          check=True, capture_output=True, text=True).stdout
-    got = json.loads(out.strip().splitlines()[-1])
+    got = json.loads([line for line in out.splitlines() if line.startswith("RESULT ")][-1][len("RESULT "):])
     return got["manifest"], time.perf_counter() - t0, got["rss_kib"] / 2**20
 
 
@@ -74,6 +74,10 @@ def main() -> None:
     ap.add_argument("--memory-limit", default="6GB")
     ap.add_argument("--workdir", default=None)
     ap.add_argument("--consecutive", type=int, default=0, help="then N more daily runs, one day each")
+    ap.add_argument("--keep", action="store_true", help="keep --workdir, with a copy of the state after the "
+                    "first run (work-base), for --reuse")
+    ap.add_argument("--reuse", action="store_true", help="start from --workdir's work-base (same arguments): "
+                    "skip writing the history and the first run")
     args = ap.parse_args()
     root = Path(args.workdir or tempfile.mkdtemp(prefix="labeler-job-bench-"))
     root.mkdir(parents=True, exist_ok=True)
@@ -83,16 +87,27 @@ def main() -> None:
     pd.DataFrame({"item_id": [f"i{x:06d}" for x in range(args.items)],
                   "category": [f"c{x % 300:03d}" for x in range(args.items)]}).to_parquet(root / "items.parquet")
     inter = root / "interactions"
-    t0 = time.perf_counter()
-    for d in range(args.days):
-        write_day(inter, d, args.daily, weights, args.items, seed=1)
-    print(f"wrote {args.days} x {args.daily:,} interactions in {time.perf_counter() - t0:.0f}s", flush=True)
     cfg = JobConfig(items=str(root / "items.parquet"), interactions=str(inter), work_dir=str(root / "work"),
                     run={"taxonomy_from": "categories"},
                     engine={"memory_limit": args.memory_limit, "temp_dir": str(root / "spill")})
-    first, t_first, rss_first = run_job_child(cfg)
-    print(f"setup: first run over {args.days * args.daily:,} interactions {t_first:.0f}s, peak RSS "
-          f"{rss_first:.2f} GiB {json.dumps(first['durations_s'])}", flush=True)
+    if args.reuse and (root / "work-base").is_dir():
+        for d in range(args.days, args.days + 1 + args.consecutive):  # the days after the first run's
+            date = pd.Timestamp("2026-01-01T00:00:00Z") + pd.Timedelta(days=d)
+            shutil.rmtree(inter / f"date={date.strftime('%Y-%m-%d')}", ignore_errors=True)
+        for name in ("work", "work-full"):
+            shutil.rmtree(root / name, ignore_errors=True)
+        shutil.copytree(root / "work-base", root / "work", copy_function=os.link)
+        print("reusing the first run's state in work-base", flush=True)
+    else:
+        t0 = time.perf_counter()
+        for d in range(args.days):
+            write_day(inter, d, args.daily, weights, args.items, seed=1)
+        print(f"wrote {args.days} x {args.daily:,} interactions in {time.perf_counter() - t0:.0f}s", flush=True)
+        first, t_first, rss_first = run_job_child(cfg)
+        print(f"setup: first run over {args.days * args.daily:,} interactions {t_first:.0f}s, peak RSS "
+              f"{rss_first:.2f} GiB {json.dumps(first['durations_s'])}", flush=True)
+        if args.keep:
+            shutil.copytree(root / "work", root / "work-base", copy_function=os.link)
     write_day(inter, args.days, args.daily, weights, args.items, seed=1)
     # the full recompute starts from the same committed state (a hard-linked copy: the job never
     # changes a file in place), so both publish the same changed store
@@ -119,7 +134,8 @@ def main() -> None:
     if times:
         print(f"consecutive daily runs: last / first = {times[-1] / times[0]:.2f} "
               f"(median {sorted(times)[len(times) // 2]:.1f}s)")
-    shutil.rmtree(root, ignore_errors=True)
+    if not args.keep:
+        shutil.rmtree(root, ignore_errors=True)
 
 
 if __name__ == "__main__":

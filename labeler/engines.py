@@ -101,7 +101,9 @@ class DuckDBEngine(Engine):
                   "preserve_insertion_order": False}
         if self.config.threads:
             kwargs["threads"] = self.config.threads
-        return ibis.duckdb.connect(**kwargs)
+        con = ibis.duckdb.connect(**kwargs)
+        quiet(con.con)
+        return con
 
     def raw_sql(self, sql: str):
         return self.con.con.execute(sql)
@@ -290,6 +292,13 @@ def canonical_row(schema, dialect: str) -> str:
             txt = f"CAST({col} AS {text_type})"
         parts.append(f"COALESCE({txt}, {null})")
     return " || chr(31) || ".join(parts)
+
+
+def quiet(con):
+    """A DuckDB connection that never draws its progress bar (on stdout, which belongs to the
+    caller: the job's JSON output, a scheduler's log)."""
+    con.execute("SET enable_progress_bar = false")
+    return con
 
 
 def _groups(batches, key: str, write):

@@ -177,6 +177,15 @@ class LabelRun:
         return footprint_rows(self.base, self.transitions, self.config, self.as_of_us, history=self.history,
                               carried=self.carried[0], carried_until_us=self.carried_until_us)
 
+    @functools.cached_property
+    def touched_footprints(self):
+        """With carried state: the footprints of only the topics the new events qualify for (the
+        others are the carried rows, aged, with the new history_len). Without: ``footprints``."""
+        if self.carried is None:
+            return self.footprints
+        return footprint_rows(self.base, self.transitions, self.config, self.as_of_us, history=self.history,
+                              carried=self.carried[0], carried_until_us=self.carried_until_us, touched_only=True)
+
     @property
     def history(self):
         """Ibis table: (user_id, history_len), each user's interactions up to ``as_of_us``."""
@@ -215,13 +224,15 @@ class LabelRun:
         t = t.order_by([t.user_id, t.level, t.topic_id])
         return _finish_footprints(self.engine.to_arrow(t))
 
-    def footprint_batches(self, rows: int = 65_536):
+    def footprint_batches(self, rows: int = 65_536, touched_only: bool = False):
         """The footprints in key order (user, level, topic) as Arrow record batches, streamed from
-        the engine, so that memory follows a batch rather than the population."""
+        the engine, so that memory follows a batch rather than the population (``touched_only``:
+        see ``touched_footprints``)."""
         if self.written is not None:
             yield from pq.ParquetFile(self.written["footprints"]).iter_batches(batch_size=rows)
             return
-        for batch in self.engine.sorted_batches(self.footprints, ["user_id", "level", "topic_id"], rows):
+        t = self.touched_footprints if touched_only else self.footprints
+        for batch in self.engine.sorted_batches(t, ["user_id", "level", "topic_id"], rows):
             yield from _finish_footprints(pa.Table.from_batches([batch])).to_batches()
 
     def history_frame(self) -> pd.DataFrame:

@@ -234,7 +234,7 @@ def continued_history(rows: ir.Table, carried_users: ir.Table, as_of_us: int) ->
 
 def footprint_rows(rows: ir.Table, transitions: ir.Table, cfg: LabelConfig, as_of_us: int,
                    history: ir.Table | None = None, carried: ir.Table | None = None,
-                   carried_until_us: int | None = None) -> ir.Table:
+                   carried_until_us: int | None = None, touched_only: bool = False) -> ir.Table:
     """The footprints table as seen by an interaction just after ``as_of_us``.
 
     One row per (user, level, topic) touched by a qualifying interaction at or before ``as_of_us``.
@@ -246,11 +246,16 @@ def footprint_rows(rows: ir.Table, transitions: ir.Table, cfg: LabelConfig, as_o
     hold carried stand-ins (see :func:`carried_rows`) plus the new events: counts and first times
     add to the carried ones, and a topic known now without a new start of its known period after
     the watermark has been known since the carried ``known_since``. ``history`` (user_id,
-    history_len) replaces the count of the rows' own interactions.
+    history_len) replaces the count of the rows' own interactions. ``touched_only`` keeps just the
+    topics the new events qualify for: every other carried row is the carried one, with the new
+    ``history_len``, seen from the later watermark (``job.outputs.age_footprints``), so the job
+    fills those in from its previous files instead of recomputing them.
     """
     end = as_of_us + 1
     keys = ["user_id", "level", "topic_id"]
     qual = rows.filter(qualifies(rows, cfg) & (rows.ts_us <= as_of_us))
+    if carried is not None and touched_only:
+        qual = qual.semi_join(qual.filter(qual.item_id.notnull()).select(keys).distinct(), keys)
     in_window = qual.ts_us >= (end - cfg.memory_us) if cfg.memory_us is not None else qual.ts_us.notnull()
     support = in_window.cast("int64").sum()
     if carried is None:

@@ -11,6 +11,7 @@ import labeler.job.outputs as outputs
 import labeler.labelling as labelling
 
 SCHEMA = pa.schema([("user_id", pa.string()), ("k", pa.int64())])
+KEYS = [("user_id", "ascending", "at_end"), ("k", "ascending", "at_end")]
 
 
 def _rows(pairs) -> pa.Table:
@@ -38,11 +39,48 @@ def test_streamed_merge_writes_the_bytes_of_one_sorted_write(tmp_path_factory, o
         pq.write_table(old_t, tmp / "prev.parquet", row_group_size=group)
         aged = lambda t: t.set_column(1, "k", pa.compute.add(t.column("k"), 100))  # noqa: E731
         n = outputs.write_merged(tmp / "prev.parquet", pa.array(drop, pa.string()), new_t, aged, SCHEMA,
-                                 tmp / "out.parquet", "write_footprints")
+                                 tmp / "out.parquet", "write_footprints", KEYS)
     finally:
         mp.undo()
     kept = [(u, k + 100) for u, c in old.items() if u not in drop for k in range(c)]
     expected = _rows(kept + [(u, 10 + k) for u, c in new.items() for k in range(c)])
+    pq.write_table(expected, tmp / "expected.parquet", row_group_size=group)
+    assert n == expected.num_rows
+    assert (tmp / "out.parquet").read_bytes() == (tmp / "expected.parquet").read_bytes()
+
+
+@settings(max_examples=60, deadline=None)
+@given(old=st.dictionaries(st.text("abcé", min_size=1, max_size=3), st.sets(st.integers(0, 9), min_size=1, max_size=6),
+                           max_size=30),
+       new=st.dictionaries(st.text("abcé", min_size=1, max_size=3), st.sets(st.integers(0, 9), min_size=1, max_size=4),
+                           max_size=12),
+       group=st.integers(1, 7))
+def test_streamed_merge_interleaves_a_users_new_and_kept_rows_by_key(tmp_path_factory, old, new, group):
+    """Users with rows in both (a continued user's touched topics and the rest of their earlier
+    rows): the merge interleaves them by key and a new row replaces an earlier one of the same
+    key, whatever the row groups, even when a user's earlier rows span several of them: the
+    bytes of one write_table of the sorted whole."""
+    tmp = tmp_path_factory.mktemp("interleave")
+    schema = pa.schema([("user_id", pa.string()), ("k", pa.int64()), ("v", pa.int64())])
+
+    def rows(triples):
+        triples = sorted(triples)
+        return pa.table({"user_id": [u for u, _, _ in triples], "k": [k for _, k, _ in triples],
+                         "v": [v for _, _, v in triples]}, schema=schema)
+    old_t = rows((u, k, 0) for u, ks in old.items() for k in ks)
+    new_t = rows((u, k, 1) for u, ks in new.items() for k in ks)
+    mp = pytest.MonkeyPatch()
+    mp.setattr(outputs, "ROW_GROUP", group)
+    mp.setattr(labelling, "ROW_GROUP", group)
+    try:
+        pq.write_table(old_t, tmp / "prev.parquet", row_group_size=group)
+        aged = lambda t: t.set_column(2, "v", pa.compute.add(t.column("v"), 100))  # noqa: E731
+        n = outputs.write_merged(tmp / "prev.parquet", None, new_t, aged, schema, tmp / "out.parquet",
+                                 "write_footprints", KEYS)
+    finally:
+        mp.undo()
+    expected = rows([(u, k, 100) for u, ks in old.items() for k in ks if k not in new.get(u, ())]
+                    + [(u, k, 1) for u, ks in new.items() for k in ks])
     pq.write_table(expected, tmp / "expected.parquet", row_group_size=group)
     assert n == expected.num_rows
     assert (tmp / "out.parquet").read_bytes() == (tmp / "expected.parquet").read_bytes()

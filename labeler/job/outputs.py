@@ -137,14 +137,16 @@ class GenerationWriter:
             if date not in self._done:
                 self.write_date(date, None)
 
-    def write_people(self, footprints: pa.Table, users: pa.Table, aged) -> None:
+    def write_people(self, footprints: pa.Table, users: pa.Table, aged, continued: pa.Array | None = None) -> None:
         """footprints.parquet and users.parquet: previous rows of others (aged to the new
         watermark by ``aged``), plus the re-labelled users' new rows.
 
-        The previous files are sorted and hold no row of the users written anew, so only the new
-        rows are sorted, and the previous file is streamed one row group at a time and merged
-        with them by user: memory follows the new rows, not the population. ``new_footprints``
-        and ``new_people`` keep just the new rows; ``footprint_rows`` and ``user_rows`` count all.
+        ``continued`` users (continued from carried state) may bring only the topics their new
+        events touched: their other previous rows stay, aged, with the new ``history_len``.
+        The previous files are sorted, so only the new rows are sorted, and the previous file is
+        streamed one row group at a time and merged with them: memory follows the new rows, not
+        the population. ``new_footprints`` and ``new_people`` keep just the new rows;
+        ``footprint_rows`` and ``user_rows`` count all.
         """
         merge = self.prev is not None and self.people is not None
         if isinstance(footprints, pa.Table):
@@ -159,12 +161,18 @@ class GenerationWriter:
             raise ValueError("a stream of history batches is written only into a generation of its own")
         else:
             us = (pa.Table.from_batches([b]).cast(USERS_SCHEMA) for b in users)
-        self.footprint_rows = write_merged(self.prev / "footprints.parquet" if merge else None, self.people, fp,
-                                           aged, FOOTPRINTS_SCHEMA, self.gen / "footprints.parquet",
-                                           "write_footprints")
+        if merge and continued is not None and len(continued):
+            whole = self.users if self.users is not None else pa.array([], pa.string())
+            topped = Topped(us.filter(pc.is_in(us.column("user_id"), value_set=continued)), aged)
+        else:
+            whole, topped = self.people, aged
+        self.footprint_rows = write_merged(self.prev / "footprints.parquet" if merge else None, whole, fp,
+                                           topped, FOOTPRINTS_SCHEMA, self.gen / "footprints.parquet",
+                                           "write_footprints", FOOTPRINT_SORT)
         failpoints.hit("mid_footprints_write")
         self.user_rows = write_merged(self.prev / "users.parquet" if merge else None, self.people, us,
-                                      lambda t: t, USERS_SCHEMA, self.gen / "users.parquet", "write_footprints")
+                                      lambda t: t, USERS_SCHEMA, self.gen / "users.parquet", "write_footprints",
+                                      [("user_id", "ascending", "at_end")])
         self.new_footprints = fp if isinstance(fp, pa.Table) else None
         self.new_people = us if isinstance(us, pa.Table) else None
 
@@ -226,12 +234,12 @@ class DateWriter:
 
 
 def write_merged(prev: Path | None, drop: pa.Array | None, new: pa.Table, aged, schema: pa.Schema, dest: Path,
-                 point: str) -> int:
-    """Write ``dest``: the rows of ``prev`` (sorted by user; users in ``drop`` left out, the rest
-    passed through ``aged``) merged by user with ``new`` (sorted, no user in both), streaming
-    ``prev`` one row group at a time (without ``prev``, ``new`` may be an iterable of record
-    batches in order, written as they come). Row groups hold exactly ``ROW_GROUP`` rows, as one
-    ``write_table`` of the whole would, so the bytes do not depend on how the rows arrived.
+                 point: str, keys) -> int:
+    """Write ``dest``: the rows of ``prev`` (sorted by ``keys``, user first; users in ``drop`` left
+    out, the rest passed through ``aged``) merged with ``new`` (sorted; its row wins a key in both),
+    streaming ``prev`` one row group at a time (without ``prev``, ``new`` may be an iterable of
+    record batches in order, written as they come). Row groups hold exactly ``ROW_GROUP`` rows,
+    as one ``write_table`` of the whole would, so the bytes do not depend on how the rows arrived.
     Returns the number of rows written."""
     with _atomic(dest, point) as tmp:
         out = RowGroupWriter(tmp, schema)
@@ -240,7 +248,7 @@ def write_merged(prev: Path | None, drop: pa.Array | None, new: pa.Table, aged, 
                 for piece in ([new] if isinstance(new, pa.Table) else new):
                     out.add(piece if isinstance(piece, pa.Table) else pa.Table.from_batches([piece]))
             else:
-                _merge_previous(out, prev, drop, new, aged, schema)
+                _merge_previous(out, prev, drop, new, aged, schema, keys)
         except BaseException:
             out.writer.close()
             raise
@@ -249,10 +257,12 @@ def write_merged(prev: Path | None, drop: pa.Array | None, new: pa.Table, aged, 
 
 
 def _merge_previous(out: RowGroupWriter, prev: Path, drop: pa.Array | None, new: pa.Table, aged,
-                    schema: pa.Schema) -> None:
+                    schema: pa.Schema, keys) -> None:
+    """See write_merged. The rows of a batch's last user are held back to the next batch, so a
+    user's new and previous rows always meet in one merge."""
     ids = new.column("user_id").to_pylist()
     gone = sorted(drop.to_pylist()) if drop is not None else []
-    taken = 0
+    taken, held = 0, None
     for batch in pq.ParquetFile(prev).iter_batches(batch_size=ROW_GROUP):
         old = pa.Table.from_batches([batch])
         if old.num_rows and gone:  # only the dropped ids inside this batch's range of users
@@ -260,24 +270,56 @@ def _merge_previous(out: RowGroupWriter, prev: Path, drop: pa.Array | None, new:
             inside = gone[bisect.bisect_left(gone, first):bisect.bisect_right(gone, last)]
             old = _without(old, pa.array(inside, pa.string())) if inside else old
         old = aged(old).cast(schema)
+        if held is not None:
+            old = pa.concat_tables([held, old])
         if old.num_rows == 0:
+            held = None
             continue
-        upto = bisect.bisect_right(ids, old.column("user_id")[-1].as_py())  # new users up to this batch's last
-        out.add(merge_by_user(old, new.slice(taken, upto - taken)) if upto > taken else old)
+        users = old.column("user_id")
+        last = users[-1].as_py()
+        cut = old.num_rows - pc.sum(pc.equal(users, last)).as_py()  # the last user's rows: held back
+        held, old = old.slice(cut), old.slice(0, cut)
+        upto = bisect.bisect_left(ids, last)  # new rows of users before the held one
+        out.add(_merge_sorted(old, new.slice(taken, upto - taken), keys) if upto > taken else old)
         taken = upto
-    out.add(new.slice(taken))
+    rest = new.slice(taken)
+    out.add(_merge_sorted(held, rest, keys) if held is not None else rest)
 
 
-def merge_by_user(a: pa.Table, b: pa.Table) -> pa.Table:
-    """Two tables sorted by user_id (then their other keys), with no user in both, merged into one
-    sorted table: each row keeps its place among its own user's rows."""
-    import numpy as np
+def _merge_sorted(a: pa.Table, b: pa.Table, keys) -> pa.Table:
+    """Two tables sorted by ``keys`` (unique in each) as one sorted table; where a key is in both,
+    the row of ``b`` replaces that of ``a``."""
+    if a.num_rows == 0 or b.num_rows == 0:
+        return b if a.num_rows == 0 else a
     both = pa.concat_tables([a, b])
-    users = both.column("user_id")
-    distinct = pc.unique(users)
-    rank = pc.index_in(users, value_set=distinct.take(pc.sort_indices(distinct)))  # position in id order
-    take = np.argsort(rank.to_numpy(zero_copy_only=False), kind="stable")
-    return both.take(pa.array(take))
+    both = both.take(pc.sort_indices(both, sort_keys=keys))  # stable: a's row just before b's
+    same = None
+    for name, _, _ in keys:
+        col = both.column(name)
+        eq = pc.fill_null(pc.equal(col.slice(0, len(col) - 1), col.slice(1)), False)
+        same = eq if same is None else pc.and_(same, eq)
+    if not pc.any(same).as_py():
+        return both
+    return both.filter(pa.concat_arrays([pc.invert(same).combine_chunks(), pa.array([True])]))
+
+
+class Topped:
+    """``aged`` for the previous footprints when continued users bring only their touched topics:
+    a continued user's other previous rows take the user's new ``history_len`` (from ``users``),
+    then every row is aged. (Their rows of the touched topics meet the new ones in the merge,
+    which keeps the new.)"""
+
+    def __init__(self, users: pa.Table, aged):
+        self.aged, self.users, self.history = aged, users.column("user_id"), users.column("history_len")
+
+    def __call__(self, table: pa.Table) -> pa.Table:
+        if table.num_rows and len(self.users):
+            at = pc.index_in(table.column("user_id"), value_set=self.users)
+            if at.null_count < len(at):
+                fresh = pc.take(self.history, pc.fill_null(at, 0))
+                col = table.schema.get_field_index("history_len")
+                table = table.set_column(col, "history_len", pc.if_else(pc.is_valid(at), fresh, table.column(col)))
+        return self.aged(table)
 
 
 def age_footprints(table: pa.Table, watermark_us: int, min_support: int, memory_us: int | None) -> pa.Table:

@@ -36,7 +36,7 @@ import pyarrow.compute as pc
 
 from .. import __version__
 from ..config import JobConfig
-from ..engines import make_engine
+from ..engines import make_engine, quiet
 from ..errors import ConfigError, EngineError, InputError, RejectedError
 from ..intake import Staged as StagedInput
 from ..labelling import FOOTPRINTS_SCHEMA, Carried, plan_labels
@@ -223,7 +223,8 @@ class _Run:
             people = None if user_array is None else pa.concat_arrays([user_array, pa.array(continued, pa.string())])
             writer = GenerationWriter(work / "outputs" / gen_name, prev_gen, user_array, start_date, versions,
                                       tax.version, people=people)
-            linked = self._write_generation(writer, runs, start_us, streamed=prev_gen is None and len(runs) == 1)
+            linked = self._write_generation(writer, runs, start_us, streamed=prev_gen is None and len(runs) == 1,
+                                            continued=pa.array(continued, pa.string()))
             self._timed("outputs", t0)
         failpoints.hit("after_outputs")
 
@@ -399,7 +400,7 @@ class _Run:
         if not new or not files:
             return {}
         import duckdb
-        con = duckdb.connect()
+        con = quiet(duckdb.connect())
         con.register("new_items", pa.table({"item_id": new}))
         rows = con.execute("SELECT item_id, min(epoch_us(ts)) FROM read_parquet(?) WHERE item_id IN "
                            "(SELECT item_id FROM new_items) GROUP BY item_id", [files]).fetchall()
@@ -487,7 +488,7 @@ class _Run:
         exact: set[str] = set()
         day_users: set[str] = set()
         import duckdb
-        con = duckdb.connect()
+        con = quiet(duckdb.connect())
         if new_files:
             for user, first in con.execute("SELECT user_id, min(epoch_us(ts)) FROM read_parquet(?) GROUP BY user_id",
                                            [new_files]).fetchall():
@@ -506,10 +507,11 @@ class _Run:
             starts.append(watermark + 1)
         return sorted(exact), sorted(day_users - exact), (min(starts) if starts else None)
 
-    def _write_generation(self, writer: GenerationWriter, runs: list, start_us: int | None, streamed: bool) -> int:
+    def _write_generation(self, writer: GenerationWriter, runs: list, start_us: int | None, streamed: bool,
+                          continued: pa.Array | None = None) -> int:
         """The labels of ``runs`` from ``start_us``'s day on, their footprints and histories, into ``writer``
-        (``streamed``: one full run, whose footprints come from the engine in key order). Returns the
-        number of previous dates linked unchanged."""
+        (``streamed``: one full run, whose footprints come from the engine in key order; ``continued``:
+        users continued from carried state). Returns the number of previous dates linked unchanged."""
         linked = writer.link_unchanged()
         t = runs[0].labels if len(runs) == 1 else runs[0].labels.union(runs[1].labels, distinct=False)
         t = t.filter(t.ts_us >= (start_us // DAY_US) * DAY_US) if start_us is not None else t
@@ -518,11 +520,13 @@ class _Run:
         if streamed:
             writer.write_people(runs[0].footprint_batches(), runs[0].history_batches(), self._aged)
         else:
-            # the changed users' rows only (bounded by the day): read here, from files a distributed
-            # engine's workers wrote, to merge into the previous generation's files in one pass
-            writer.write_people(pa.concat_tables([_table(r.footprint_batches(), FOOTPRINTS_SCHEMA) for r in runs]),
-                                pa.concat_tables([_table(r.history_batches(), USERS_SCHEMA) for r in runs]),
-                                self._aged)
+            # the changed rows only (bounded by the day: of a continued user, the topics the day
+            # touched): read here, from files a distributed engine's workers wrote, to merge into
+            # the previous generation's files in one pass
+            writer.write_people(
+                pa.concat_tables([_table(r.footprint_batches(touched_only=True), FOOTPRINTS_SCHEMA) for r in runs]),
+                pa.concat_tables([_table(r.history_batches(), USERS_SCHEMA) for r in runs]), self._aged,
+                continued=continued)
         return linked
 
     def _full_in_pieces(self, eng, view, files, as_of, gen: Path, versions, tax_version, limit: int,
