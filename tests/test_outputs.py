@@ -44,7 +44,7 @@ def test_streamed_merge_writes_the_bytes_of_one_sorted_write(tmp_path_factory, o
         mp.undo()
     kept = [(u, k + 100) for u, c in old.items() if u not in drop for k in range(c)]
     expected = _rows(kept + [(u, 10 + k) for u, c in new.items() for k in range(c)])
-    pq.write_table(expected, tmp / "expected.parquet", row_group_size=group)
+    pq.write_table(expected, tmp / "expected.parquet", row_group_size=group, **labelling.parquet_options(expected.schema))
     assert n == expected.num_rows
     assert (tmp / "out.parquet").read_bytes() == (tmp / "expected.parquet").read_bytes()
 
@@ -81,6 +81,6 @@ def test_streamed_merge_interleaves_a_users_new_and_kept_rows_by_key(tmp_path_fa
         mp.undo()
     expected = rows([(u, k, 100) for u, ks in old.items() for k in ks if k not in new.get(u, ())]
                     + [(u, k, 1) for u, ks in new.items() for k in ks])
-    pq.write_table(expected, tmp / "expected.parquet", row_group_size=group)
+    pq.write_table(expected, tmp / "expected.parquet", row_group_size=group, **labelling.parquet_options(expected.schema))
     assert n == expected.num_rows
     assert (tmp / "out.parquet").read_bytes() == (tmp / "expected.parquet").read_bytes()

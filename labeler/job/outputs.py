@@ -20,7 +20,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from ..labelling import FOOTPRINTS_SCHEMA, LABELS_SCHEMA, ROW_GROUP, RowGroupWriter, join_pieces
+from ..labelling import FOOTPRINTS_SCHEMA, LABELS_SCHEMA, ROW_GROUP, RowGroupWriter, join_pieces, parquet_options
 from . import failpoints
 
 log = logging.getLogger(__name__)
@@ -49,7 +49,7 @@ def _atomic(dest: Path, point: str):
 def write_table(table: pa.Table, dest: Path, point: str) -> None:
     """Write one Parquet file atomically (temp file, fsync, rename), fixed row groups."""
     with _atomic(dest, point) as tmp:
-        pq.write_table(table, tmp, row_group_size=ROW_GROUP)
+        pq.write_table(table, tmp, row_group_size=ROW_GROUP, **parquet_options(table.schema))
 
 
 def _sorted(table: pa.Table, keys) -> pa.Table:
