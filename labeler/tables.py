@@ -121,8 +121,9 @@ def require_columns(df: pd.DataFrame, required, source: str) -> None:
 def normalize_ids(df: pd.DataFrame, column: str, source: str, intake: Intake) -> pd.Series:
     """Cast an id column to non-empty strings; nulls and empty ids are errors."""
     s = df[column]
-    odd = s.map(lambda v: isinstance(v, (bytes, bytearray, dict, list, tuple, set, np.ndarray)))
-    if odd.any():
+    typed = isinstance(s.dtype, pd.StringDtype) or pd.api.types.is_numeric_dtype(s)  # holds no odd values
+    odd = None if typed else s.map(lambda v: isinstance(v, (bytes, bytearray, dict, list, tuple, set, np.ndarray)))
+    if odd is not None and odd.any():
         kinds = sorted({type(v).__name__ for v in s[odd]})
         raise InputError(f"{int(odd.sum())} id(s) that are {'/'.join(kinds)} values, not text or integers.",
                          source=source, column=column, sample=_sample(df, odd, [column]),
