@@ -215,6 +215,12 @@ class LabelRun:
             self.materialized = True
         return self
 
+    def release(self) -> None:
+        """Drop the engine tables ``materialize`` cached (the run is not read again after this)."""
+        for t in (self.labels, self._base):
+            if hasattr(t, "release"):
+                t.release()
+
     # -- results as Arrow / pandas --------------------------------------------------------------
     def _labels_sorted(self):
         t = self.labels
@@ -440,9 +446,7 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
         histories.append(sub.history_arrow())
         parts.append(sub.summary_parts())
         sums = [x + y for x, y in zip(sums, eng.content_sums(sub.labels, _CANON_COLUMNS))]
-        for t in (sub.labels, sub._base):
-            if hasattr(t, "release"):
-                t.release()
+        sub.release()
         log.info("piece %d of %d: users [%s, %s), %d interactions", k + 1, len(ranges), lo, hi, piece_rows)
         users_done += b - a
         bar.set_postfix_str(f"{users_done:,} of {len(bounds):,} users, piece {k + 1}/{len(ranges)}")

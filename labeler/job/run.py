@@ -523,10 +523,11 @@ class _Run:
             # the changed rows only (bounded by the day: of a continued user, the topics the day
             # touched): read here, from files a distributed engine's workers wrote, to merge into
             # the previous generation's files in one pass
-            writer.write_people(
-                pa.concat_tables([_table(r.footprint_batches(touched_only=True), FOOTPRINTS_SCHEMA) for r in runs]),
-                pa.concat_tables([_table(r.history_batches(), USERS_SCHEMA) for r in runs]), self._aged,
-                continued=continued)
+            fp = pa.concat_tables([_table(r.footprint_batches(touched_only=True), FOOTPRINTS_SCHEMA) for r in runs])
+            history = pa.concat_tables([_table(r.history_batches(), USERS_SCHEMA) for r in runs])
+            for r in runs:  # the engine's cached tables are done with: their memory goes before the merge's
+                r.release()
+            writer.write_people(fp, history, self._aged, continued=continued)
         return linked
 
     def _full_in_pieces(self, eng, view, files, as_of, gen: Path, versions, tax_version, limit: int,
@@ -562,9 +563,7 @@ class _Run:
             t1 = time.perf_counter()
             piece = GenerationWriter(scratch / f"{k:06d}", None, None, None, versions, tax_version)
             self._write_generation(piece, [run], None, streamed=True)
-            for t in (run.labels, run._base):
-                if hasattr(t, "release"):
-                    t.release()
+            run.release()
             pieces.append(piece)
             spent["labels"] += t1 - t0
             spent["outputs"] += time.perf_counter() - t1
