@@ -14,6 +14,24 @@ SCHEMA = pa.schema([("user_id", pa.string()), ("k", pa.int64())])
 KEYS = [("user_id", "ascending", "at_end"), ("k", "ascending", "at_end")]
 
 
+def assert_merge_is_one_write(tmp, old_t, new_t, drop, aged, expected, group) -> None:
+    """Merge ``new_t`` into the file of ``old_t`` (row groups of ``group`` rows) and check the bytes
+    equal one write of ``expected``."""
+    mp = pytest.MonkeyPatch()
+    mp.setattr(outputs, "ROW_GROUP", group)
+    mp.setattr(labelling, "ROW_GROUP", group)
+    try:
+        pq.write_table(old_t, tmp / "prev.parquet", row_group_size=group)
+        n = outputs.write_merged(tmp / "prev.parquet", drop, new_t, aged, old_t.schema, tmp / "out.parquet",
+                                 "write_footprints", KEYS)
+    finally:
+        mp.undo()
+    pq.write_table(expected, tmp / "expected.parquet", row_group_size=group,
+                   **labelling.parquet_options(expected.schema))
+    assert n == expected.num_rows
+    assert (tmp / "out.parquet").read_bytes() == (tmp / "expected.parquet").read_bytes()
+
+
 def _rows(pairs) -> pa.Table:
     pairs = sorted(pairs)
     return pa.table({"user_id": [u for u, _ in pairs], "k": [k for _, k in pairs]}, schema=SCHEMA)
@@ -32,21 +50,10 @@ def test_streamed_merge_writes_the_bytes_of_one_sorted_write(tmp_path_factory, o
     drop = [u for i, u in enumerate(sorted(old)) if u in new or (drop_share and i % 4 < drop_share - 1)]
     old_t = _rows((u, k) for u, n in old.items() for k in range(n))
     new_t = _rows((u, 10 + k) for u, n in new.items() for k in range(n))
-    mp = pytest.MonkeyPatch()
-    mp.setattr(outputs, "ROW_GROUP", group)
-    mp.setattr(labelling, "ROW_GROUP", group)
-    try:
-        pq.write_table(old_t, tmp / "prev.parquet", row_group_size=group)
-        aged = lambda t: t.set_column(1, "k", pa.compute.add(t.column("k"), 100))  # noqa: E731
-        n = outputs.write_merged(tmp / "prev.parquet", pa.array(drop, pa.string()), new_t, aged, SCHEMA,
-                                 tmp / "out.parquet", "write_footprints", KEYS)
-    finally:
-        mp.undo()
+    aged = lambda t: t.set_column(1, "k", pa.compute.add(t.column("k"), 100))  # noqa: E731
     kept = [(u, k + 100) for u, c in old.items() if u not in drop for k in range(c)]
     expected = _rows(kept + [(u, 10 + k) for u, c in new.items() for k in range(c)])
-    pq.write_table(expected, tmp / "expected.parquet", row_group_size=group, **labelling.parquet_options(expected.schema))
-    assert n == expected.num_rows
-    assert (tmp / "out.parquet").read_bytes() == (tmp / "expected.parquet").read_bytes()
+    assert_merge_is_one_write(tmp, old_t, new_t, pa.array(drop, pa.string()), aged, expected, group)
 
 
 @settings(max_examples=60, deadline=None)
@@ -69,18 +76,7 @@ def test_streamed_merge_interleaves_a_users_new_and_kept_rows_by_key(tmp_path_fa
                          "v": [v for _, _, v in triples]}, schema=schema)
     old_t = rows((u, k, 0) for u, ks in old.items() for k in ks)
     new_t = rows((u, k, 1) for u, ks in new.items() for k in ks)
-    mp = pytest.MonkeyPatch()
-    mp.setattr(outputs, "ROW_GROUP", group)
-    mp.setattr(labelling, "ROW_GROUP", group)
-    try:
-        pq.write_table(old_t, tmp / "prev.parquet", row_group_size=group)
-        aged = lambda t: t.set_column(2, "v", pa.compute.add(t.column("v"), 100))  # noqa: E731
-        n = outputs.write_merged(tmp / "prev.parquet", None, new_t, aged, schema, tmp / "out.parquet",
-                                 "write_footprints", KEYS)
-    finally:
-        mp.undo()
+    aged = lambda t: t.set_column(2, "v", pa.compute.add(t.column("v"), 100))  # noqa: E731
     expected = rows([(u, k, 100) for u, ks in old.items() for k in ks if k not in new.get(u, ())]
                     + [(u, k, 1) for u, ks in new.items() for k in ks])
-    pq.write_table(expected, tmp / "expected.parquet", row_group_size=group, **labelling.parquet_options(expected.schema))
-    assert n == expected.num_rows
-    assert (tmp / "out.parquet").read_bytes() == (tmp / "expected.parquet").read_bytes()
+    assert_merge_is_one_write(tmp, old_t, new_t, None, aged, expected, group)
