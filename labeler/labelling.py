@@ -426,17 +426,15 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
     bar = tqdm(total=run.intake.rows_in, unit=" interactions", unit_scale=True, disable=not progress,
                desc="labelling in pieces")
     users_done = 0
+    # one pass cuts the input into the pieces' files: each piece then reads its own rows only
+    scattered = eng.scatter(ev.select(*_INPUT_COLUMNS), "user_id", [hi for _, hi in ranges[:-1]], tmp / "scatter")
     for k, (lo, hi) in enumerate(ranges):
-        sel = ev
-        if lo is not None:
-            sel = sel.filter(sel.user_id >= lo)
-        if hi is not None:
-            sel = sel.filter(sel.user_id < hi)
+        sel = eng.read_parquet(scattered[k])
         import bisect
         a = 0 if lo is None else bisect.bisect_left(bounds, lo)
         b = len(bounds) if hi is None else bisect.bisect_left(bounds, hi)
         piece_rows = sum(rows_of[u] for u in bounds[a:b])
-        staged = Staged(sel.select(*_INPUT_COLUMNS), source=run.intake.source, rows=piece_rows,
+        staged = Staged(sel, source=run.intake.source, rows=piece_rows,
                         content_hash=run.intake.content_hash)
         sub = plan_labels(staged, run.taxonomy, cfg, engine=eng, as_of=as_of).materialize()
         sub.labels_version = run.labels_version
@@ -447,6 +445,7 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
         parts.append(sub.summary_parts())
         sums = [x + y for x, y in zip(sums, eng.content_sums(sub.labels, _CANON_COLUMNS))]
         sub.release()
+        shutil.rmtree(tmp / "scatter" / f"_piece={k}")
         log.info("piece %d of %d: users [%s, %s), %d interactions", k + 1, len(ranges), lo, hi, piece_rows)
         users_done += b - a
         bar.set_postfix_str(f"{users_done:,} of {len(bounds):,} users, piece {k + 1}/{len(ranges)}")

@@ -547,23 +547,22 @@ class _Run:
                  len(ranges), limit)
         scratch = gen.with_name(f".pieces-{gen.name}")
         shutil.rmtree(scratch, ignore_errors=True)
+        # one pass cuts the staged events into the pieces' files: each piece reads its own rows only
+        scattered = eng.scatter(ev, "user_id", [hi for _, hi in ranges[:-1]], scratch / "input")
         pieces: list[GenerationWriter] = []
         spent = {"labels": 0.0, "outputs": 0.0}
         bar = tqdm(total=total, unit=" interactions", unit_scale=True, disable=not self.progress,
                    desc="labelling in pieces")
         for k, (lo, hi) in enumerate(ranges):
             t0 = time.perf_counter()
-            sel = eng.read_parquet(files)
-            if lo is not None:
-                sel = sel.filter(sel.user_id >= lo)
-            if hi is not None:
-                sel = sel.filter(sel.user_id < hi)
+            sel = eng.read_parquet(scattered[k])
             run = plan_labels(StagedInput(sel, source=self.cfg.interactions, rows=0, content_hash="job"), view,
                               self.cfg.labels, engine=eng, as_of=as_of).materialize()
             t1 = time.perf_counter()
             piece = GenerationWriter(scratch / f"{k:06d}", None, None, None, versions, tax_version)
             self._write_generation(piece, [run], None, streamed=True)
             run.release()
+            shutil.rmtree(scratch / "input" / f"_piece={k}")
             pieces.append(piece)
             spent["labels"] += t1 - t0
             spent["outputs"] += time.perf_counter() - t1
