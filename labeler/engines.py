@@ -83,19 +83,6 @@ class Engine:
         arrive one at a time: memory follows a batch, not the table."""
         return self.to_batches(expr.order_by([ibis.asc(expr[k], nulls_first=False) for k in keys]), rows)
 
-    def scatter(self, expr, column: str, bounds: list, folder: Path) -> list[list[str]]:
-        """Write the rows of ``expr`` into Parquet files, one set per range of ``column`` cut at the
-        ascending ``bounds`` (set k: bounds[k-1] <= value < bounds[k]), in one pass over the input;
-        returns each set's files. Pieces then read only their own rows, not the whole input again."""
-        col = expr[column]
-        piece = ibis.cases(*[(col < b, k) for k, b in enumerate(bounds)], else_=len(bounds)) if bounds \
-            else ibis.literal(0)
-        sql = self.con.compile(expr.mutate(_piece=piece.cast("int32")))
-        folder.mkdir(parents=True, exist_ok=True)
-        target = str(folder).replace("'", "''")
-        self.raw_sql(f"COPY ({sql}) TO '{target}' (FORMAT parquet, PARTITION_BY (_piece), OVERWRITE_OR_IGNORE)")
-        return [sorted(str(f) for f in (folder / f"_piece={k}").glob("*.parquet")) for k in range(len(bounds) + 1)]
-
     def write_groups(self, expr, key: str, write):
         """For each distinct value of the string column ``key``: ``write(value, rows)`` with all of that
         value's rows (an Arrow table, ``key`` dropped), once; yields (value, what it returned) as
@@ -120,6 +107,19 @@ class DuckDBEngine(Engine):
 
     def raw_sql(self, sql: str):
         return self.con.con.execute(sql)
+
+    def scatter(self, expr, column: str, bounds: list, folder: Path) -> list[list[str]]:
+        """Write the rows of ``expr`` into Parquet files, one set per range of ``column`` cut at the
+        ascending ``bounds`` (set k: bounds[k-1] <= value < bounds[k]), in one pass over the input;
+        returns each set's files. Pieces then read only their own rows, not the whole input again."""
+        col = expr[column]
+        piece = ibis.cases(*[(col < b, k) for k, b in enumerate(bounds)], else_=len(bounds)) if bounds \
+            else ibis.literal(0)
+        sql = self.con.compile(expr.mutate(_piece=piece.cast("int32")))
+        folder.mkdir(parents=True, exist_ok=True)
+        target = str(folder).replace("'", "''")
+        self.raw_sql(f"COPY ({sql}) TO '{target}' (FORMAT parquet, PARTITION_BY (_piece), OVERWRITE_OR_IGNORE)")
+        return [sorted(str(f) for f in (folder / f"_piece={k}").glob("*.parquet")) for k in range(len(bounds) + 1)]
 
     def epoch_us(self, ts):
         # the generic date difference costs about a tenth of a label run here

@@ -14,7 +14,7 @@ import os
 import shutil
 import uuid
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 import ibis
 import pandas as pd
@@ -381,19 +381,34 @@ class LabelRun:
         return n, fp_rows, summary, history
 
 
-def user_ranges(counts: pa.Table, limit: int) -> list[tuple[str | None, str | None]]:
-    """Ranges [lo, hi) of user ids, in id order, each holding about ``limit`` interactions (a
-    heavier user is a range of its own). ``counts``: user_id, n."""
+class Piece(NamedTuple):
+    """A range [lo, hi) of user ids (None: open), with its interactions and users."""
+
+    lo: str | None
+    hi: str | None
+    rows: int
+    users: int
+
+
+def user_pieces(counts: pa.Table, limit: int) -> list[Piece]:
+    """Ranges of user ids, in id order, each holding about ``limit`` interactions (a heavier user
+    is a range of its own). ``counts``: user_id, n."""
     counts = counts.take(pc.sort_indices(counts, [("user_id", "ascending")]))
     ids, ns = counts.column("user_id").to_pylist(), counts.column("n").to_pylist()
-    ranges, lo, held = [], None, 0
+    pieces, lo, held, users = [], None, 0, 0
     for user, n in zip(ids, ns):
         if held and held + n > limit:
-            ranges.append((lo, user))
-            lo, held = user, 0
+            pieces.append(Piece(lo, user, held, users))
+            lo, held, users = user, 0, 0
         held += n
-    ranges.append((lo, None))
-    return ranges
+        users += 1
+    pieces.append(Piece(lo, None, held, users))
+    return pieces
+
+
+def user_ranges(counts: pa.Table, limit: int) -> list[tuple[str | None, str | None]]:
+    """The [lo, hi) bounds of ``user_pieces``."""
+    return [(p.lo, p.hi) for p in user_pieces(counts, limit)]
 
 
 def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = False):
@@ -414,26 +429,20 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
         keep = stats if cfg.max_user_events is None else stats.filter(pc.less_equal(stats.column("n"), cfg.max_user_events))
         as_of_us = pc.max(keep.column("mx")).as_py()
     as_of = None if as_of_us is None else pd.Timestamp(as_of_us, unit="us", tz="UTC")
-    ranges = user_ranges(raw, limit)
-    rows_of = dict(zip(raw.column("user_id").to_pylist(), raw.column("n").to_pylist()))
+    ranges = user_pieces(raw, limit)
     log.info("labelling %d interactions of %d users in %d pieces of about %d", run.intake.rows_in, raw.num_rows,
              len(ranges), limit)
     n = 0
     sums = [0, 0, 0]
     parts, histories, fp_files = [], [], []
-    bounds = sorted(rows_of)
     from tqdm import tqdm
     bar = tqdm(total=run.intake.rows_in, unit=" interactions", unit_scale=True, disable=not progress,
                desc="labelling in pieces")
     users_done = 0
     # one pass cuts the input into the pieces' files: each piece then reads its own rows only
-    scattered = eng.scatter(ev.select(*_INPUT_COLUMNS), "user_id", [hi for _, hi in ranges[:-1]], tmp / "scatter")
-    for k, (lo, hi) in enumerate(ranges):
+    scattered = eng.scatter(ev.select(*_INPUT_COLUMNS), "user_id", [p.hi for p in ranges[:-1]], tmp / "scatter")
+    for k, (lo, hi, piece_rows, piece_users) in enumerate(ranges):
         sel = eng.read_parquet(scattered[k])
-        import bisect
-        a = 0 if lo is None else bisect.bisect_left(bounds, lo)
-        b = len(bounds) if hi is None else bisect.bisect_left(bounds, hi)
-        piece_rows = sum(rows_of[u] for u in bounds[a:b])
         staged = Staged(sel, source=run.intake.source, rows=piece_rows,
                         content_hash=run.intake.content_hash)
         sub = plan_labels(staged, run.taxonomy, cfg, engine=eng, as_of=as_of).materialize()
@@ -447,8 +456,8 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
         sub.release()
         shutil.rmtree(tmp / "scatter" / f"_piece={k}")
         log.info("piece %d of %d: users [%s, %s), %d interactions", k + 1, len(ranges), lo, hi, piece_rows)
-        users_done += b - a
-        bar.set_postfix_str(f"{users_done:,} of {len(bounds):,} users, piece {k + 1}/{len(ranges)}")
+        users_done += piece_users
+        bar.set_postfix_str(f"{users_done:,} of {raw.num_rows:,} users, piece {k + 1}/{len(ranges)}")
         bar.update(piece_rows)
     bar.close()
     _join_label_pieces(tmp / "pieces", tmp / "labels", len(ranges))

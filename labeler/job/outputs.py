@@ -213,7 +213,6 @@ class DateWriter:
             prev = pq.read_table(old)
             pieces.append(_without(prev, self.users) if self.users is not None else prev.slice(0, 0))
         if new_rows is not None and new_rows.num_rows:
-            new_rows = new_rows.drop_columns([c for c in ("ts_us",) if c in new_rows.column_names])
             by = new_rows.group_by(["level", "label"]).aggregate([("label", "count")])
             done["counts"] = {(int(lv), lb): int(n) for lv, lb, n in zip(
                 by.column("level").to_pylist(), by.column("label").to_pylist(), by.column("label_count").to_pylist())}

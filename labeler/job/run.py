@@ -15,7 +15,6 @@ A run, under the work folder's lock:
 """
 from __future__ import annotations
 
-import bisect
 import dataclasses
 import datetime as dt
 import functools
@@ -515,7 +514,7 @@ class _Run:
         linked = writer.link_unchanged()
         t = runs[0].labels if len(runs) == 1 else runs[0].labels.union(runs[1].labels, distinct=False)
         t = t.filter(t.ts_us >= (start_us // DAY_US) * DAY_US) if start_us is not None else t
-        writer.write_stream(runs[0].engine, t.mutate(_date=t.ts.date().cast("string")))
+        writer.write_stream(runs[0].engine, t.mutate(_date=t.ts.date().cast("string")).drop("ts_us"))
         writer.finish_dates()
         if streamed:
             writer.write_people(runs[0].footprint_batches(), runs[0].history_batches(), self._aged)
@@ -536,24 +535,21 @@ class _Run:
         a time (each piece in memory), write each piece as a generation of its own, then join them
         in user order into ``gen``: the same bytes as one pass, with memory bounded by the piece."""
         from tqdm import tqdm
-        from ..labelling import user_ranges
+        from ..labelling import user_pieces
         ev = eng.read_parquet(files)
         counts = eng.to_arrow(ev.group_by("user_id").aggregate(n=ev.count()))
-        ranges = user_ranges(counts, limit)
-        counts = counts.take(pc.sort_indices(counts, [("user_id", "ascending")]))
-        ids = counts.column("user_id").to_pylist()
-        upto = np.concatenate([[0], np.cumsum(counts.column("n").to_numpy())])  # interactions before each id
-        log.info("full run of %d interactions of %d users in %d pieces of about %d", total, len(ids),
+        ranges = user_pieces(counts, limit)
+        log.info("full run of %d interactions of %d users in %d pieces of about %d", total, counts.num_rows,
                  len(ranges), limit)
         scratch = gen.with_name(f".pieces-{gen.name}")
         shutil.rmtree(scratch, ignore_errors=True)
         # one pass cuts the staged events into the pieces' files: each piece reads its own rows only
-        scattered = eng.scatter(ev, "user_id", [hi for _, hi in ranges[:-1]], scratch / "input")
+        scattered = eng.scatter(ev, "user_id", [p.hi for p in ranges[:-1]], scratch / "input")
         pieces: list[GenerationWriter] = []
         spent = {"labels": 0.0, "outputs": 0.0}
         bar = tqdm(total=total, unit=" interactions", unit_scale=True, disable=not self.progress,
                    desc="labelling in pieces")
-        for k, (lo, hi) in enumerate(ranges):
+        for k, each in enumerate(ranges):
             t0 = time.perf_counter()
             sel = eng.read_parquet(scattered[k])
             run = plan_labels(StagedInput(sel, source=self.cfg.interactions, rows=0, content_hash="job"), view,
@@ -566,9 +562,7 @@ class _Run:
             pieces.append(piece)
             spent["labels"] += t1 - t0
             spent["outputs"] += time.perf_counter() - t1
-            a = 0 if lo is None else bisect.bisect_left(ids, lo)
-            b = len(ids) if hi is None else bisect.bisect_left(ids, hi)
-            bar.update(int(upto[b] - upto[a]))
+            bar.update(each.rows)
             bar.set_postfix_str(f"piece {k + 1}/{len(ranges)}")
         bar.close()
         self.timings["labels"] = round(spent["labels"], 3)
