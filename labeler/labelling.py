@@ -28,7 +28,8 @@ from .engines import Engine, make_engine, sums_digest
 from .intake import Staged, interactions_table, item_topics_table
 from .intake import _COLUMNS as _INPUT_COLUMNS
 from .labels import carried_rows, continue_history, continued_history, each_interaction_once, footprint_rows, \
-    heavy_users, known_topic_counts, known_transitions, label_rows, prepare, topic_rows, user_history, with_support
+    heavy_users, known_transitions, label_rows, prepare, topic_rows, user_history, with_known_topics, \
+    with_support
 from .tables import FOOTPRINTS_COLUMNS, LABEL_VALUES, LABELS_COLUMNS, Intake
 
 log = logging.getLogger(__name__)
@@ -597,7 +598,7 @@ def plan_labels(interactions, taxonomy, config: LabelConfig | None = None, *,
 
 
 def _label_expr(base, transitions, cfg: LabelConfig, single_topic: bool, after_us: int | None = None):
-    labels = label_rows(with_support(base, cfg), known_topic_counts(base, transitions), cfg, single_topic)
+    labels = label_rows(with_known_topics(with_support(base, cfg), transitions, cfg), cfg, single_topic)
     return labels if after_us is None else labels.filter(labels.ts_us > after_us)  # stand-ins are never labelled
 
 

@@ -9,12 +9,14 @@ Steps, for each interaction e = (u, i, t) and level L:
 
 1. ``prepare``: drop rows whose ``event_type`` is not listed, collapse duplicate events (same
    user, item, ts and event_id become one row with the highest engagement), and count them;
-   ``history_len`` = number of the user's interactions strictly before t (rank over ts).
+   ``history_len`` starts at 0 (or the carried count).
 2. ``topic_rows``: one row per (interaction, level, item topic), as of t; no topic = unplaced.
 3. ``support``: qualifying interactions of u on topic T in the window before t; T is known at t
    when support >= ``min_support``.
 4. ``known_transitions``: the moments each (u, L, T) becomes known or stops being known; their
-   running sum gives ``known_topics`` = |F_u(t)| at any t.
+   running sum gives ``known_topics`` = |F_u(t)| at any t (``with_known_topics``: without memory,
+   the same count as one window over the rows, which also adds the user's interactions before t
+   to ``history_len``).
 5. ``label_rows``: the label, the topic named, discovery, boost, multiplier and shaped reward.
 
 Continuing from carried state (the job's daily path): the rules read a user's history only through
@@ -43,7 +45,9 @@ def _i64(value) -> ir.Value:
 
 
 def prepare(ev: ir.Table, cfg: LabelConfig) -> ir.Table:
-    """Filter event types, collapse duplicate events, and add ``history_len``.
+    """Filter event types, collapse duplicate events, and add ``history_len`` = 0 (the user's
+    interactions before these rows: ``continue_history`` sets the carried count; ``with_known_topics``
+    adds the rows' own).
 
     ``ev`` has user_id, item_id, ts, ts_us, engagement, event_id, event_type. Duplicates (same
     user, item, ts and event_id) become one row with the highest engagement and the smallest
@@ -53,15 +57,15 @@ def prepare(ev: ir.Table, cfg: LabelConfig) -> ir.Table:
         ev = ev.filter(ev.event_type.isin(list(cfg.event_types)))
     ev = ev.group_by(list(INTERACTION_KEY)).aggregate(
         ts=ev.ts.min(), engagement=ev.engagement.max(), event_type=ev.event_type.min(), arm=ev.arm.min())
-    return ev.mutate(history_len=ibis.rank().over(group_by=ev.user_id, order_by=ev.ts_us))
+    return ev.mutate(history_len=_i64(0))
 
 
 def continue_history(prepared: ir.Table, carried_users: ir.Table) -> ir.Table:
-    """``history_len`` of new events counted on from each user's carried count (user_id, history_len)."""
+    """``history_len`` of new events starts from each user's carried count (user_id, history_len)."""
     c = carried_users.select(_uid="user_id", _h0="history_len")
     j = prepared.left_join(c, prepared.user_id == c._uid)
     return j.select(*[j[k] for k in prepared.columns if k != "history_len"],
-                    history_len=(j.history_len + j._h0.fill_null(0)).cast("int64"))
+                    history_len=j._h0.fill_null(0).cast("int64"))
 
 
 def carried_rows(carried: ir.Table, like: ir.Table, cfg: LabelConfig) -> ir.Table:
@@ -112,12 +116,25 @@ def qualifies(rows: ir.Table, cfg: LabelConfig) -> ir.Value:
 
 
 def with_support(rows: ir.Table, cfg: LabelConfig) -> ir.Table:
-    """Add ``known``: qualifying interactions of (u, L, T) strictly before t reach min_support."""
+    """Add ``known``: qualifying interactions of (u, L, T) strictly before t reach min_support.
+
+    Without memory, also ``_kth``: 1 on the one row at which the qualifying count of (u, L, T)
+    reaches min_support (a running count over rows in time order; among rows of equal time the
+    order is arbitrary, but exactly one qualifying row takes the count to min_support), so the
+    topic is known from just after that row's time on: ``with_known_topics`` sums these.
+    """
     lower = None if cfg.memory_us is None else -cfg.memory_us
-    w = ibis.window(group_by=[rows.user_id, rows.level, rows.topic_id], order_by=rows.ts_us,
-                    range=(lower, -1))
-    support = qualifies(rows, cfg).cast("int64").sum().over(w).fill_null(0)
-    return rows.mutate(known=rows.topic_id.notnull() & (support >= cfg.min_support))
+    keys = [rows.user_id, rows.level, rows.topic_id]
+    w = ibis.window(group_by=keys, order_by=rows.ts_us, range=(lower, -1))
+    q = qualifies(rows, cfg).cast("int64")
+    windows = {"_support": q.sum().over(w).fill_null(0)}
+    if cfg.memory_us is None:  # the same partition and order, in the same select: one sort
+        windows["_upto"] = q.sum().over(ibis.window(group_by=keys, order_by=rows.ts_us, rows=(None, 0)))
+    out = rows.mutate(_q=q, **windows)
+    out = out.mutate(known=out.topic_id.notnull() & (out._support >= cfg.min_support))
+    if cfg.memory_us is None:
+        out = out.mutate(_kth=((out._q == 1) & (out._upto == cfg.min_support)).cast("int64"))
+    return out.drop(*[c for c in ("_q", "_support", "_upto") if c in out.columns])
 
 
 def known_transitions(rows: ir.Table, cfg: LabelConfig) -> ir.Table:
@@ -157,6 +174,27 @@ def known_topic_counts(points: ir.Table, transitions: ir.Table) -> ir.Table:
     return tl.filter(tl.is_point).select("user_id", "level", ts_us=tl.p, known_topics=tl.known_topics)
 
 
+def with_known_topics(rows: ir.Table, transitions: ir.Table, cfg: LabelConfig) -> ir.Table:
+    """Add ``known_topics`` = |F_u(t)| at level L to each row of ``with_support``, and complete
+    ``history_len`` with the user's own interactions strictly before t.
+
+    One window over the user's rows at the level, in time order: the interactions before t are
+    the rows before t that are an interaction's first (or only) topic row at the level (carried
+    stand-ins have no item). Without memory a topic stays known once it is, so known_topics is the
+    running sum of ``_kth`` before t in the same window. With memory topics are also forgotten,
+    so the counts come from the transitions' timeline.
+    """
+    w = ibis.window(group_by=[rows.user_id, rows.level], order_by=rows.ts_us, range=(None, -1))
+    once = (rows.item_id.notnull() & (rows.pos.isnull() | (rows.pos == 0))).cast("int64")
+    own = {"history_len": rows.history_len + once.sum().over(w).fill_null(0)}
+    if cfg.memory_us is None:
+        return rows.mutate(**own, known_topics=rows._kth.sum().over(w).fill_null(0)).drop("_kth")
+    rows = rows.mutate(**own)
+    counts = known_topic_counts(rows, transitions)
+    j = rows.left_join(counts, ["user_id", "level", "ts_us"])
+    return j.select(*rows.columns, known_topics=j.known_topics.fill_null(0))
+
+
 def per_interaction(rows: ir.Table, single_topic: bool) -> ir.Table:
     """One row per (interaction, level) with topic counts and the topics a label can name.
 
@@ -170,7 +208,8 @@ def per_interaction(rows: ir.Table, single_topic: bool) -> ir.Table:
             n_topics=placed.cast("int64"), n_known=(placed & rows.known).cast("int64"),
             first_known=ibis.ifelse(rows.known, rows.topic_id, ibis.null("string")),
             first_unknown=ibis.ifelse(rows.known, ibis.null("string"), rows.topic_id),
-            primary=rows.topic_id, blocked=(placed & rows.nb.fill_null(False)).cast("int64"))
+            primary=rows.topic_id, blocked=(placed & rows.nb.fill_null(False)).cast("int64"),
+            known_topics=rows.known_topics)
     return rows.group_by(["user_id", "item_id", "ts_us", "event_id", "level"]).aggregate(
         ts=rows.ts.max(), engagement=rows.engagement.max(), history_len=rows.history_len.max(),
         n_topics=placed.cast("int64").sum(),
@@ -178,14 +217,13 @@ def per_interaction(rows: ir.Table, single_topic: bool) -> ir.Table:
         first_known=rows.topic_id.argmin(rows.pos, where=placed & rows.known),
         first_unknown=rows.topic_id.argmin(rows.pos, where=placed & ~rows.known),
         primary=rows.topic_id.argmin(rows.pos, where=placed),
-        blocked=(placed & rows.nb).cast("int64").max())
+        blocked=(placed & rows.nb).cast("int64").max(), known_topics=rows.known_topics.max())
 
 
-def label_rows(rows: ir.Table, counts: ir.Table, cfg: LabelConfig, single_topic: bool = False) -> ir.Table:
-    """Collapse topic rows to one row per (interaction, level) and apply the label rules."""
+def label_rows(rows: ir.Table, cfg: LabelConfig, single_topic: bool = False) -> ir.Table:
+    """Collapse topic rows (with ``known`` and ``known_topics``) to one row per (interaction, level)
+    and apply the label rules."""
     g = per_interaction(rows, single_topic)
-    j = g.left_join(counts, ["user_id", "level", "ts_us"])
-    g = j.select(*g.columns, known_topics=j.known_topics.fill_null(0))
     in_profile = (g.n_known >= 1) if cfg.multi_topic == "all_new" else (g.n_known == g.n_topics)
     label = ibis.cases((g.n_topics == 0, "unplaced"), (g.history_len < cfg.warmup, "cold_start"),
                        (in_profile, "in_profile"), else_="new_interest")
