@@ -13,6 +13,7 @@ import logging
 import os
 from pathlib import Path
 
+import duckdb
 import ibis
 import numpy as np
 import pandas as pd
@@ -67,17 +68,22 @@ def interactions_table(engine, data, input_config: InputConfig | None = None,
         raise InputError(f"expected a pandas DataFrame, an Arrow table or a Parquet path, got "
                          f"{type(data).__name__}.", source=source)
     df, intake = normalize_interactions(data, cfg, source)
-    intake.content_hash = frame_hash(df[list(_COLUMNS)])
-    table = engine.table(pa.Table.from_pandas(df[list(_COLUMNS)], schema=_arrow_schema(),
-                                              preserve_index=False), "interactions")
-    return _with_ts_us(engine, table), intake
+    arrow = pa.Table.from_pandas(df[list(_COLUMNS)], schema=_arrow_schema(), preserve_index=False)
+    intake.content_hash = rows_hash(arrow)
+    return _with_ts_us(engine, engine.table(arrow, "interactions")), intake
 
 
-def frame_hash(df: pd.DataFrame) -> str:
-    """Order-independent hash of a normalised table: the sum of pandas' 64-bit row hashes."""
-    rows = pd.util.hash_pandas_object(df, index=False).to_numpy(dtype=np.uint64)
-    total = int(rows.sum(dtype=np.uint64))  # wraps modulo 2**64
-    return hashlib.sha256(f"frame\x00{len(df)}\x00{total}".encode()).hexdigest()
+def rows_hash(table: pa.Table) -> str:
+    """Order-independent hash of normalised interactions: the sum of 64-bit row hashes (DuckDB's
+    ``hash`` over every column), computed in this process whatever the engine, so the same rows
+    give the same labels_version everywhere. DuckDB does not promise its hash across its own
+    releases: the project pins DuckDB's exact version, and labels_version also names labeler's."""
+    con = duckdb.connect()
+    con.register("rows", table)
+    cols = ", ".join(f'"{c}"' for c in table.column_names)
+    n, total = con.execute(f"SELECT count(*), sum(hash({cols})::HUGEINT) FROM rows").fetchone()
+    con.close()
+    return hashlib.sha256(f"rows\x00{n}\x00{total or 0}".encode()).hexdigest()
 
 
 def files_hash(path: Path) -> str:

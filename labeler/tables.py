@@ -141,13 +141,13 @@ def normalize_ids(df: pd.DataFrame, column: str, source: str, intake: Intake) ->
         raise InputError(f"{int(bad.sum())} null id(s).", source=source, column=column,
                          sample=_sample(df, bad, [column, *INTERACTIONS_REQUIRED]),
                          hint="Every row needs an id; fix or remove these rows upstream.")
-    s = s.astype(str)
+    s = s.astype("str")  # pandas' Arrow-backed text: the checks below and the hand-over to Arrow stay in C
     empty = s.str.strip() == ""
     if empty.any():
         raise InputError(f"{int(empty.sum())} empty id(s).", source=source, column=column,
                          sample=_sample(df, empty, [column, *INTERACTIONS_REQUIRED]),
                          hint="Every row needs a non-empty id.")
-    return s.astype(object)
+    return s
 
 
 _TZ_SUFFIX = r"(?:[Zz]|[+-]\d\d(?::?\d\d)?)$"
@@ -280,8 +280,11 @@ def normalize_interactions(df: pd.DataFrame, cfg: InputConfig | None = None,
             s = df[col]
             if pd.api.types.is_integer_dtype(s):
                 intake.note(f"column '{col}' holds integers; cast to strings")
-            out[col] = s.map(lambda v: None if v is None or (isinstance(v, float) and math.isnan(v))
-                             else str(v)).astype(object)
+            if isinstance(s.dtype, pd.StringDtype) or pd.api.types.is_integer_dtype(s):
+                out[col] = s.astype("str")
+            else:  # mixed Python values: each one rendered, missing ones kept missing
+                out[col] = s.map(lambda v: None if v is None or (isinstance(v, float) and math.isnan(v))
+                                 else str(v)).astype("str")
         else:
             out[col] = None
     out = out.reset_index(drop=True)
