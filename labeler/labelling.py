@@ -28,8 +28,8 @@ from .engines import Engine, make_engine, sums_digest
 from .intake import Staged, interactions_table, item_topics_table
 from .intake import _COLUMNS as _INPUT_COLUMNS
 from .labels import carried_rows, continue_history, continued_history, each_interaction_once, footprint_rows, \
-    heavy_users, known_transitions, label_rows, prepare, topic_rows, user_history, with_known_topics, \
-    with_support
+    heavy_users, known_transitions, label_rows, prepare, topic_rows, user_history, with_carried, \
+    with_known_topics, with_support
 from .tables import FOOTPRINTS_COLUMNS, LABEL_VALUES, LABELS_COLUMNS, Intake
 
 log = logging.getLogger(__name__)
@@ -146,6 +146,7 @@ class LabelRun:
     carried_until_us: int | None = None
     taxonomy: Any = None   # what the plan labels with (pieces of a bucketed write plan with it again)
     written: dict | None = None  # after a write in pieces: the footprints file and history it wrote
+    _with_all_carried: Any = None  # with carried state: the topic rows plus stand-ins of every carried topic
 
     def share_base(self) -> "LabelRun":
         """Compute the topic rows once into an engine table, for results that read them again."""
@@ -185,8 +186,10 @@ class LabelRun:
         """Ibis table: footprints with known_since_us, as of ``as_of_us``."""
         if self.carried is None:
             return footprint_rows(self.base, self.transitions, self.config, self.as_of_us)
-        return footprint_rows(self.base, self.transitions, self.config, self.as_of_us, history=self.history,
-                              carried=self.carried[0], carried_until_us=self.carried_until_us)
+        # every carried topic's row, so from every topic's stand-ins (``base`` may hold only the touched
+        # topics'; the transitions after the watermark are the same in both)
+        return footprint_rows(self._with_all_carried, self.transitions, self.config, self.as_of_us,
+                              history=self.history, carried=self.carried[0], carried_until_us=self.carried_until_us)
 
     @functools.cached_property
     def touched_footprints(self):
@@ -586,15 +589,17 @@ def plan_labels(interactions, taxonomy, config: LabelConfig | None = None, *,
                              hint="Continue from carried state only with later events; label the users "
                                   "of earlier ones over their whole history.")
         prepared = continue_history(prepared, state[1])
-    base = topic_rows(prepared, it, levels, has_valid)
+    base = whole = topic_rows(prepared, it, levels, has_valid)
     if state is not None:
-        base = base.union(carried_rows(state[0], base, cfg), distinct=False)
+        whole = base.union(carried_rows(state[0], base, cfg), distinct=False)
+        base = with_carried(base, state[0], cfg)
     transitions = known_transitions(base, cfg)
     labels = _label_expr(base, transitions, cfg, single_topic, until)
     version = hashlib.sha256("\x00".join([taxonomy.version, cfg.canonical_json(), intake.content_hash,
                                           __version__]).encode()).hexdigest()
     return LabelRun(eng, cfg, taxonomy.version, version, labels, base, transitions, ev, intake, as_of, heavy=heavy,
-                    single_topic=single_topic, carried=state, carried_until_us=until, taxonomy=taxonomy)
+                    single_topic=single_topic, carried=state, carried_until_us=until, taxonomy=taxonomy,
+                    _with_all_carried=whole)
 
 
 def _label_expr(base, transitions, cfg: LabelConfig, single_topic: bool, after_us: int | None = None):

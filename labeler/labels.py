@@ -80,9 +80,31 @@ def carried_rows(carried: ir.Table, like: ir.Table, cfg: LabelConfig) -> ir.Tabl
     schema = like.schema()
     values = {"user_id": one.user_id, "level": one.level, "topic_id": one.topic_id, "ts_us": one.recent_us,
               "engagement": ibis.literal(float(cfg.engaged_min), type="float64"), "pos": _i64(0),
-              "nb": ibis.literal(False), "history_len": _i64(0)}
+              "nb": ibis.literal(False), "history_len": _i64(0), "known_before": _i64(0)}
     return one.select(*[(values[k] if k in values else ibis.null(schema[k])).cast(schema[k]).name(k)
                         for k in like.columns])
+
+
+def with_carried(rows: ir.Table, carried: ir.Table, cfg: LabelConfig) -> ir.Table:
+    """The new topic rows and what labelling them needs of the carried footprints ``carried``.
+
+    Each (user, level, topic) the new rows name gets its stand-ins (``carried_rows``). Without
+    memory, a carried topic the new rows do not name is known at every new event if it was known
+    at the watermark, and at none otherwise, so it adds one to the ``known_before`` of the user's
+    new rows at that level instead of rows of its own. With memory a topic can be forgotten after
+    the watermark, so every carried topic keeps its stand-ins.
+    """
+    if cfg.memory_us is not None:
+        return rows.union(carried_rows(carried, rows, cfg), distinct=False)
+    keys = ["user_id", "level", "topic_id"]
+    named = rows.filter(rows.topic_id.notnull()).select(*keys).distinct()
+    rest = carried.anti_join(named, keys)
+    rest = rest.filter(rest.known)
+    before = rest.group_by(["user_id", "level"]).aggregate(_kb=rest.count()).rename(_u="user_id", _l="level")
+    j = rows.left_join(before, [rows.user_id == before._u, rows.level == before._l])
+    rows = j.select(*[(j._kb.fill_null(0) + j.known_before).cast("int64").name(c) if c == "known_before" else j[c]
+                      for c in rows.columns])
+    return rows.union(carried_rows(carried.semi_join(named, keys), rows, cfg), distinct=False)
 
 
 def heavy_users(ev: ir.Table, cfg: LabelConfig) -> ir.Table:
@@ -93,6 +115,7 @@ def heavy_users(ev: ir.Table, cfg: LabelConfig) -> ir.Table:
 
 def topic_rows(ev: ir.Table, item_topics: ir.Table, levels: ir.Table, as_of: bool) -> ir.Table:
     """One row per (interaction, level, topic valid at its time); topic_id null when unplaced.
+    ``known_before`` (0 here) counts known topics the rows do not show (see ``with_carried``).
 
     ``item_topics`` has item_id, level, topic_id, pos (0 = primary), nb (no-boost flag) and, when
     ``as_of``, valid_from_us / valid_to_us.
@@ -104,7 +127,7 @@ def topic_rows(ev: ir.Table, item_topics: ir.Table, levels: ir.Table, as_of: boo
         preds += [it.valid_from_us <= grid.ts_us, grid.ts_us < it.valid_to_us]
     joined = grid.left_join(it, preds)
     return joined.select(*[c for c in joined.columns if c not in (
-        "it_item_id", "it_level", "valid_from_us", "valid_to_us")])
+        "it_item_id", "it_level", "valid_from_us", "valid_to_us")], known_before=_i64(0))
 
 
 def qualifies(rows: ir.Table, cfg: LabelConfig) -> ir.Value:
@@ -188,7 +211,7 @@ def with_known_topics(rows: ir.Table, transitions: ir.Table, cfg: LabelConfig) -
     once = (rows.item_id.notnull() & (rows.pos.isnull() | (rows.pos == 0))).cast("int64")
     own = {"history_len": rows.history_len + once.sum().over(w).fill_null(0)}
     if cfg.memory_us is None:
-        return rows.mutate(**own, known_topics=rows._kth.sum().over(w).fill_null(0)).drop("_kth")
+        return rows.mutate(**own, known_topics=rows.known_before + rows._kth.sum().over(w).fill_null(0)).drop("_kth")
     rows = rows.mutate(**own)
     counts = known_topic_counts(rows, transitions)
     j = rows.left_join(counts, ["user_id", "level", "ts_us"])

@@ -80,3 +80,23 @@ def test_streamed_merge_interleaves_a_users_new_and_kept_rows_by_key(tmp_path_fa
     expected = rows([(u, k, 100) for u, ks in old.items() for k in ks if k not in new.get(u, ())]
                     + [(u, k, 1) for u, ks in new.items() for k in ks])
     assert_merge_is_one_write(tmp, old_t, new_t, None, aged, expected, group)
+
+
+@settings(max_examples=80, deadline=None)
+@given(a=st.sets(st.tuples(st.text("abcé", min_size=1, max_size=3), st.integers(-3, 3)), max_size=30),
+       b=st.sets(st.tuples(st.text("abcé", min_size=1, max_size=3), st.integers(-3, 3)), max_size=30),
+       descending=st.booleans())
+def test_merging_by_integer_ranks_equals_sorting_by_the_columns(a, b, descending):
+    """The merge's one-integer sort key (each key column's rank among its distinct values) orders
+    rows as sorting by the columns themselves does, byte-wise for text, ascending or descending,
+    and keeps the second table's row of a key found in both."""
+    keys = [("user_id", "ascending", "at_end"), ("k", "descending" if descending else "ascending", "at_end")]
+
+    def table(pairs, v):
+        t = pa.table({"user_id": [u for u, _ in pairs], "k": [k for _, k in pairs], "v": [v] * len(pairs)},
+                     schema=pa.schema([("user_id", pa.string()), ("k", pa.int64()), ("v", pa.int64())]))
+        return t.take(pa.compute.sort_indices(t, sort_keys=keys))
+    ta, tb = table(sorted(a), 0), table(sorted(b), 1)
+    want = outputs._merge_sorted_by_columns(pa.concat_tables([ta, tb]), keys) if ta.num_rows and tb.num_rows \
+        else (tb if ta.num_rows == 0 else ta)
+    assert outputs._merge_sorted(ta, tb, keys).equals(want)

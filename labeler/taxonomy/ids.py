@@ -3,7 +3,6 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
-from scipy.optimize import linear_sum_assignment
 
 
 def format_id(n: int) -> str:
@@ -32,6 +31,7 @@ def match_topics(new_members: dict[int, set[str]], old_members: dict[str, set[st
             inter = len(a & b)
             if inter:
                 jac[i, j] = inter / len(a | b)
+    from scipy.optimize import linear_sum_assignment  # only a rebuild needs it
     rows, cols = linear_sum_assignment(-jac)
     return {new_keys[r]: old_keys[c] for r, c in zip(rows, cols) if jac[r, c] >= min_jaccard}
 
