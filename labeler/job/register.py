@@ -13,6 +13,8 @@ import logging
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
 
 from ..tables import item_text
 from ..taxonomy import Taxonomy
@@ -83,7 +85,9 @@ def update_register(register: pd.DataFrame, tax: Taxonomy, items: pd.DataFrame, 
     latest = register.sort_values("valid_from", na_position="first", kind="stable") \
         .drop_duplicates("item_id", keep="last").set_index("item_id")["text_hash"]
     now = pd.Series(hashes.to_numpy(), index=items["item_id"].to_numpy())
-    known = now.index.isin(latest.index)
+    # pyarrow's set lookup: pandas' isin on Arrow-backed text walks the values in Python
+    known = pc.is_in(pa.array(now.index.to_numpy(dtype=object), pa.string()),
+                     value_set=pa.array(latest.index.to_numpy(dtype=object), pa.string())).to_numpy(zero_copy_only=False)
     new = now.index[~known].tolist()
     changed = now.index[known][now[known].to_numpy() != latest.reindex(now.index[known]).to_numpy()].tolist()
     todo = items[items["item_id"].isin(set(new) | set(changed))]
