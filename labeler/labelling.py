@@ -148,12 +148,16 @@ class LabelRun:
     written: dict | None = None  # after a write in pieces: the footprints file and history it wrote
     _with_all_carried: Any = None  # with carried state: the topic rows plus stand-ins of every carried topic
 
+    @property
+    def n_topics(self) -> int:
+        return _topic_bound(self.taxonomy)
+
     def share_base(self) -> "LabelRun":
         """Compute the topic rows once into an engine table, for results that read them again."""
         if not self.base_shared:
             self._base = self._base.cache()
             self._transitions = known_transitions(self._base, self.config)
-            self.labels = _label_expr(self._base, self._transitions, self.config, self.single_topic,
+            self.labels = _label_expr(self._base, self._transitions, self.config, self.single_topic, self.n_topics,
                                       self.carried_until_us)
             self.base_shared = True
         return self
@@ -594,7 +598,7 @@ def plan_labels(interactions, taxonomy, config: LabelConfig | None = None, *,
         whole = base.union(carried_rows(state[0], base, cfg), distinct=False)
         base = with_carried(base, state[0], cfg)
     transitions = known_transitions(base, cfg)
-    labels = _label_expr(base, transitions, cfg, single_topic, until)
+    labels = _label_expr(base, transitions, cfg, single_topic, _topic_bound(taxonomy), until)
     version = hashlib.sha256("\x00".join([taxonomy.version, cfg.canonical_json(), intake.content_hash,
                                           __version__]).encode()).hexdigest()
     return LabelRun(eng, cfg, taxonomy.version, version, labels, base, transitions, ev, intake, as_of, heavy=heavy,
@@ -602,8 +606,13 @@ def plan_labels(interactions, taxonomy, config: LabelConfig | None = None, *,
                     _with_all_carried=whole)
 
 
-def _label_expr(base, transitions, cfg: LabelConfig, single_topic: bool, after_us: int | None = None):
-    labels = label_rows(with_known_topics(with_support(base, cfg), transitions, cfg), cfg, single_topic)
+def _topic_bound(taxonomy) -> int:
+    """At least as many as the topics one user can know at one level."""
+    return max(len(taxonomy.topics), int(taxonomy.item_topics["topic_id"].nunique()))
+
+
+def _label_expr(base, transitions, cfg: LabelConfig, single_topic: bool, topics: int, after_us: int | None = None):
+    labels = label_rows(with_known_topics(with_support(base, cfg), transitions, cfg, topics), cfg, single_topic)
     return labels if after_us is None else labels.filter(labels.ts_us > after_us)  # stand-ins are never labelled
 
 

@@ -197,22 +197,26 @@ def known_topic_counts(points: ir.Table, transitions: ir.Table) -> ir.Table:
     return tl.filter(tl.is_point).select("user_id", "level", ts_us=tl.p, known_topics=tl.known_topics)
 
 
-def with_known_topics(rows: ir.Table, transitions: ir.Table, cfg: LabelConfig) -> ir.Table:
+def with_known_topics(rows: ir.Table, transitions: ir.Table, cfg: LabelConfig, topics: int) -> ir.Table:
     """Add ``known_topics`` = |F_u(t)| at level L to each row of ``with_support``, and complete
     ``history_len`` with the user's own interactions strictly before t.
 
     One window over the user's rows at the level, in time order: the interactions before t are
     the rows before t that are an interaction's first (or only) topic row at the level (carried
     stand-ins have no item). Without memory a topic stays known once it is, so known_topics is the
-    running sum of ``_kth`` before t in the same window. With memory topics are also forgotten,
-    so the counts come from the transitions' timeline.
+    running sum of ``_kth`` before t in the same window: both sums are taken as one, the topic
+    count in the low bits (it is at most ``topics``, the taxonomy's number of topics) and the
+    interactions above them, which halves the window's work. With memory topics are also
+    forgotten, so the counts come from the transitions' timeline.
     """
     w = ibis.window(group_by=[rows.user_id, rows.level], order_by=rows.ts_us, range=(None, -1))
     once = (rows.item_id.notnull() & (rows.pos.isnull() | (rows.pos == 0))).cast("int64")
-    own = {"history_len": rows.history_len + once.sum().over(w).fill_null(0)}
     if cfg.memory_us is None:
-        return rows.mutate(**own, known_topics=rows.known_before + rows._kth.sum().over(w).fill_null(0)).drop("_kth")
-    rows = rows.mutate(**own)
+        low = _i64(2 ** max(int(topics).bit_length(), 1))  # > any count of known topics
+        both = (once * low + rows._kth).sum().over(w).fill_null(0)
+        return rows.mutate(history_len=rows.history_len + both // low,
+                           known_topics=rows.known_before + both % low).drop("_kth")
+    rows = rows.mutate(history_len=rows.history_len + once.sum().over(w).fill_null(0))
     counts = known_topic_counts(rows, transitions)
     j = rows.left_join(counts, ["user_id", "level", "ts_us"])
     return j.select(*rows.columns, known_topics=j.known_topics.fill_null(0))
