@@ -246,7 +246,7 @@ def run_demo(out_dir, seed: int = 7, embedder=None, progress: bool = True, small
         "validation_notes": item_intake.notes + inter_intake.notes,
         "taxonomy": {"dir": str(out / "taxonomy"), "version": tax.version,
                      "topics_per_level": tax.manifest["topics_per_level"],
-                     "unplaced": tax.manifest["n_unplaced"], **fit},
+                     "unplaced": tax.manifest["n_unplaced"], "warnings": tax.manifest.get("warnings", []), **fit},
         "labels": {"dir": str(out / "labels"), "label_from": burn_in.isoformat(),
                    "true_new_interest_events_after_burn_in": int(len(ev)),
                    "share_labelled_new_interest_level1": round(recall, 4),

@@ -251,6 +251,26 @@ def test_degenerate_catalogs_give_one_topic(titles):
     tax = build_taxonomy(items, CFG, embedder=HashingEmbedder(64), progress=False)
     assert (tax.topics.groupby("level").size() == 1).all()
     assert tax.item_topics["item_id"].nunique() == len(items)
+    # ... and the manifest says so, with the setting to change, for each level
+    warnings = tax.manifest["warnings"]
+    assert len(warnings) == 2 and all("taxonomy.min_cluster_size" in w for w in warnings)
+    assert "one coarse topic" in warnings[0] and "one fine topic" in warnings[1]
+
+
+def test_a_topic_holding_most_items_is_reported():
+    """A topic with more than half of a level's placed items is named in the warnings with its
+    share and the count setting to raise; levels without one get none, and a balanced build's
+    manifest has none."""
+    from labeler.embed import HashingEmbedder
+    from labeler.taxonomy.build import shape_warnings
+    topics = pd.DataFrame({"topic_id": ["t1", "t2", "t3", "t4", "t5", "t6"], "level": [0, 0, 0, 1, 1, 1],
+                           "name": ["yarn / wool", "bonsai", "bread", "a", "b", "c"], "size": [70, 20, 10, 30, 30, 40]})
+    got = shape_warnings(topics, CFG.model_copy(update={"coarse_topics": 3}))
+    assert got == ["coarse topic t1 'yarn / wool' holds 70% of the level's 100 placed items, so it tells little "
+                   "apart. Set taxonomy.coarse_topics higher (now 3) or lower taxonomy.min_cluster_size (now 8)."]
+    cfg = CFG.model_copy(update={"coarse_topics": 4})
+    balanced = build_taxonomy(catalog(n_per=40), cfg, embedder=HashingEmbedder(128), progress=False)
+    assert balanced.manifest["warnings"] == []
 
 
 def test_empty_text_items_are_unplaced_and_counted():

@@ -26,6 +26,8 @@ def run(args) -> int:
           f"{t['topics_per_level']['1']} fine topics, {t['unplaced']} items unplaced; "
           f"fine-topic AMI vs true themes {t['level1_ami_vs_true_theme']:.3f}, "
           f"coarse AMI vs true hobbies {t['level0_ami_vs_true_hobby']:.3f} -> {t['dir']}")
+    for w in t.get("warnings", []):
+        print(f"  taxonomy warning: {w}")
     for level, v in sorted(lab["levels"].items()):
         c = v["labels"]
         print(f"labels level {level}: in_profile {c['in_profile']}, new_interest {c['new_interest']}, "

@@ -51,6 +51,8 @@ def _print_taxonomy(tax: Taxonomy, out: str) -> None:
               + "; ".join(f"{r.topic_id} {r.name} ({r.size})" for r in g.nlargest(3, "size").itertuples()))
     n = m.get("n_items", 0)
     print(f"  items: {n}, unplaced: {m.get('n_unplaced', 0)} ({100.0 * m.get('n_unplaced', 0) / max(n, 1):.1f}%)")
+    for w in m.get("warnings", []):
+        print(f"  warning: {w}")
     if "embedding_cache" in m:
         c = m["embedding_cache"]
         print(f"  embeddings: {c['hits']} from cache, {c['misses']} computed")

@@ -215,6 +215,33 @@ def _input_version(items: pd.DataFrame, cfg: TaxonomyConfig, model: str, previou
                          *sorted(f"{i}\x01{t}" for i, t in zip(items["item_id"], texts))])
 
 
+LEVEL_NAMES = {0: "coarse", 1: "fine"}
+# a topic holding more than this share of a level's placed items says little about anyone
+DOMINANT_SHARE = 0.5
+
+
+def shape_warnings(topics: pd.DataFrame, cfg: TaxonomyConfig) -> list[str]:
+    """What a practitioner should know about a learned taxonomy's shape, with the setting to change:
+    a level of one topic, or a topic holding more than half of a level's placed items."""
+    out = []
+    for level, g in topics.groupby("level"):
+        name, total = LEVEL_NAMES.get(int(level), f"level {level}"), int(g["size"].sum())
+        count_setting = "taxonomy.coarse_topics" if int(level) == 0 else "taxonomy.fine_topics"
+        if len(g) == 1:
+            out.append(f"the catalog yields one {name} topic (level {level}): its items are too few or too alike "
+                       f"for these settings. Lower taxonomy.min_cluster_size (now {cfg.min_cluster_size}), set "
+                       f"{count_setting}, or give the items more text (taxonomy.text_columns).")
+            continue
+        top = g.loc[g["size"].idxmax()]
+        share = int(top["size"]) / max(total, 1)
+        if share > DOMINANT_SHARE:
+            out.append(f"{name} topic {top['topic_id']} '{top['name']}' holds {100 * share:.0f}% of the level's "
+                       f"{total} placed items, so it tells little apart. Set {count_setting} higher (now "
+                       f"{getattr(cfg, count_setting.split('.')[1]) or f'chosen: {len(g)}'}) or lower "
+                       f"taxonomy.min_cluster_size (now {cfg.min_cluster_size}).")
+    return out
+
+
 def build_taxonomy(items: pd.DataFrame, config: TaxonomyConfig | None = None, *, embedder=None,
                    previous: Taxonomy | None = None, progress: bool = True,
                    source: str = "items") -> Taxonomy:
@@ -275,13 +302,16 @@ def build_taxonomy(items: pd.DataFrame, config: TaxonomyConfig | None = None, *,
     topics = pd.DataFrame(topic_rows, columns=["topic_id", "level", "parent_id", "name", "keywords",
                                                "size", "first_version"])
     n_unplaced = int(len(items) - rows["item_id"].nunique())
+    warnings = shape_warnings(topics, cfg)
+    for w in warnings:
+        log.warning("taxonomy %s: %s", version[:12], w)
     manifest = {"format": FORMAT, "kind": "learned", "version": version, "tool_version": __version__,
                 "model": embedder.name, "config": json.loads(cfg.meaning_json()), "n_items": int(len(items)),
                 "n_fit_sample": int(len(fit_idx)), "n_unplaced": n_unplaced,
                 "n_empty_text": int(empty.sum()), "n_noise_in_fit": n_noise,
                 "topics_per_level": {str(l): int((topics["level"] == l).sum()) for l in (0, 1)},
                 "previous_version": previous.version if previous is not None else None,
-                "embedding_cache": {"hits": stats.hits, "misses": stats.misses}}
+                "embedding_cache": {"hits": stats.hits, "misses": stats.misses}, "warnings": warnings}
     log.info("taxonomy %s: %d coarse / %d fine topics, %d of %d items unplaced (%.1f%%)", version[:12],
              manifest["topics_per_level"]["0"], manifest["topics_per_level"]["1"], n_unplaced,
              len(items), 100.0 * n_unplaced / max(len(items), 1))
