@@ -147,6 +147,7 @@ class LabelRun:
     taxonomy: Any = None   # what the plan labels with (pieces of a bucketed write plan with it again)
     written: dict | None = None  # after a write in pieces: the footprints file and history it wrote
     _with_all_carried: Any = None  # with carried state: the topic rows plus stand-ins of every carried topic
+    _new_rows: Any = None  # with carried state: the new events' topic rows, cached
 
     @property
     def n_topics(self) -> int:
@@ -225,7 +226,7 @@ class LabelRun:
 
     def release(self) -> None:
         """Drop the engine tables ``materialize`` cached (the run is not read again after this)."""
-        for t in (self.labels, self._base):
+        for t in (self.labels, self._base, self._new_rows):
             if hasattr(t, "release"):
                 t.release()
 
@@ -582,7 +583,7 @@ def plan_labels(interactions, taxonomy, config: LabelConfig | None = None, *,
                               "crossing the limit loses every earlier label. Label the whole history.")
         heavy = heavy_users(prepared, cfg).cache()
         prepared = prepared.anti_join(heavy, "user_id")
-    state, until = None, None
+    state, until, new_rows = None, None, None
     if carried is not None:
         state, until = carried.tables(eng), carried.watermark_us
         first = eng.to_pandas(ev.aggregate(m=ev.ts_us.min()))["m"].iloc[0]
@@ -595,6 +596,7 @@ def plan_labels(interactions, taxonomy, config: LabelConfig | None = None, *,
         prepared = continue_history(prepared, state[1])
     base = whole = topic_rows(prepared, it, levels, has_valid)
     if state is not None:
+        base = new_rows = base.cache()  # the new events' topic rows are read three times below: collapse them once
         whole = base.union(carried_rows(state[0], base, cfg), distinct=False)
         base = with_carried(base, state[0], cfg)
     transitions = known_transitions(base, cfg)
@@ -603,7 +605,7 @@ def plan_labels(interactions, taxonomy, config: LabelConfig | None = None, *,
                                           __version__]).encode()).hexdigest()
     return LabelRun(eng, cfg, taxonomy.version, version, labels, base, transitions, ev, intake, as_of, heavy=heavy,
                     single_topic=single_topic, carried=state, carried_until_us=until, taxonomy=taxonomy,
-                    _with_all_carried=whole)
+                    _with_all_carried=whole, _new_rows=new_rows)
 
 
 def _topic_bound(taxonomy) -> int:
