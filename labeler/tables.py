@@ -101,7 +101,7 @@ def _duplicate_columns(columns, source: str) -> None:
 
 
 def _sample(df: pd.DataFrame, mask, cols) -> list[str]:
-    rows = df.loc[mask, [c for c in cols if c in df.columns]].head(5)
+    rows = df.loc[mask, [c for c in dict.fromkeys(cols) if c in df.columns]].head(5)  # each column once
     return [f"row {i}: " + ", ".join(f"{c}={v!r}" for c, v in r.items()) for i, r in rows.iterrows()]
 
 
