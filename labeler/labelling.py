@@ -149,17 +149,13 @@ class LabelRun:
     _with_all_carried: Any = None  # with carried state: the topic rows plus stand-ins of every carried topic
     _new_rows: Any = None  # with carried state: the new events' topic rows, cached
 
-    @property
-    def n_topics(self) -> int:
-        return _topic_bound(self.taxonomy)
-
     def share_base(self) -> "LabelRun":
         """Compute the topic rows once into an engine table, for results that read them again."""
         if not self.base_shared:
             self._base = self._base.cache()
             self._transitions = known_transitions(self._base, self.config)
-            self.labels = _label_expr(self._base, self._transitions, self.config, self.single_topic, self.n_topics,
-                                      self.carried_until_us)
+            self.labels = _label_expr(self._base, self._transitions, self.config, self.single_topic,
+                                      _topic_bound(self.taxonomy), self.carried_until_us)
             self.base_shared = True
         return self
 
@@ -413,11 +409,6 @@ def user_pieces(counts: pa.Table, limit: int) -> list[Piece]:
         users += 1
     pieces.append(Piece(lo, None, held, users))
     return pieces
-
-
-def user_ranges(counts: pa.Table, limit: int) -> list[tuple[str | None, str | None]]:
-    """The [lo, hi) bounds of ``user_pieces``."""
-    return [(p.lo, p.hi) for p in user_pieces(counts, limit)]
 
 
 def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = False):

@@ -15,7 +15,7 @@ import pytest
 from labeler import LabelConfig, Taxonomy
 from labeler.config import EngineConfig
 from labeler.engines import make_engine
-from labeler.labelling import plan_labels, user_ranges
+from labeler.labelling import plan_labels, user_pieces
 
 CONFIGS = {
     "defaults": {},
@@ -78,8 +78,10 @@ def test_cli_label_in_pieces_publishes_the_same_store(cli, fixtures, tmp_path):
         assert a.classify(u, items) == b.classify(u, items)
 
 
-def test_user_ranges_cover_every_user_once_in_order():
-    """Ranges [lo, hi) partition the ids in order, each near the limit; a heavy user stands alone."""
+def test_user_pieces_cover_every_user_once_in_order():
+    """Ranges [lo, hi) partition the ids in order, each near the limit; a heavy user stands alone;
+    each piece counts its interactions and users."""
     counts = pa.table({"user_id": ["d", "a", "c", "b", "e"], "n": [1, 2, 10, 3, 1]})
-    ranges = user_ranges(counts, 5)
-    assert ranges == [(None, "c"), ("c", "d"), ("d", None)]
+    pieces = user_pieces(counts, 5)
+    assert [(p.lo, p.hi) for p in pieces] == [(None, "c"), ("c", "d"), ("d", None)]
+    assert [(p.rows, p.users) for p in pieces] == [(5, 2), (10, 1), (2, 2)]
