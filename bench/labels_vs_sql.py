@@ -28,6 +28,7 @@ import pyarrow.parquet as pq
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 from labeler import LabelConfig, Taxonomy  # noqa: E402
+from labeler.intake import rows_hash  # noqa: E402
 from labeler.labelling import plan_labels  # noqa: E402
 
 # The fastest query for the default settings we could write by hand (it also beat the first one
@@ -124,15 +125,10 @@ COMPARED = pa.schema([("user_id", pa.string()), ("item_id", pa.string()), ("ts",
                       ("shaped_reward", pa.float64()), ("history_len", pa.int64()), ("known_topics", pa.int64())])
 
 
-def rows_digest(table: pa.Table) -> tuple[int, int]:
-    """(rows, sum of DuckDB's row hashes) over the compared columns: equal digests mean the same
-    rows in any order (a sorted copy of two 50M-row results would not fit in memory)."""
-    t = table.select(COMPARED.names).cast(COMPARED)
-    con = duckdb.connect()
-    con.register("t", t)
-    n, h = con.execute(f"SELECT count(*), sum(hash({', '.join(COMPARED.names)})::HUGEINT) FROM t").fetchone()
-    con.close()
-    return int(n), int(h)
+def rows_digest(table: pa.Table) -> str:
+    """The intake's order-independent row hash over the compared columns: equal digests mean the
+    same rows in any order (a sorted copy of two 50M-row results would not fit in memory)."""
+    return rows_hash(table.select(COMPARED.names).cast(COMPARED))
 
 
 def main() -> None:
