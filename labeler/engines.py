@@ -83,12 +83,15 @@ class Engine:
         arrive one at a time: memory follows a batch, not the table."""
         return self.to_batches(expr.order_by([ibis.asc(expr[k], nulls_first=False) for k in keys]), rows)
 
-    def write_groups(self, expr, key: str, write):
+    def write_groups(self, expr, key: str, write, order: tuple[str, ...] = ()):
         """For each distinct value of the string column ``key``: ``write(value, rows)`` with all of that
-        value's rows (an Arrow table, ``key`` dropped), once; yields (value, what it returned) as
-        each group is done. Here the rows stream through this process in key order; a distributed
-        engine calls ``write`` on its workers (so it must be picklable, and its files reachable)."""
-        yield from _groups(self.to_batches(expr.order_by(key)), key, write)
+        value's rows (an Arrow table, ``key`` dropped, ordered by the columns ``order``, ascending,
+        nulls last), once; yields (value, what it returned) as each group is done. Here the rows
+        stream through this process in key order; a distributed engine calls ``write`` on its
+        workers (so it must be picklable, and its files reachable)."""
+        keys = [key, *order]
+        yield from _groups(self.to_batches(expr.order_by([ibis.asc(expr[k], nulls_first=False) for k in keys])),
+                           key, write)
 
 
 class DuckDBEngine(Engine):
@@ -249,13 +252,14 @@ class SparkEngine(Engine):
         finally:
             shutil.rmtree(folder, ignore_errors=True)
 
-    def write_groups(self, expr, key: str, write):
-        """One shuffle by ``key``; each executor task calls ``write`` on its groups' rows and sends
-        back only what ``write`` returns (pickled): the rows never reach the driver."""
+    def write_groups(self, expr, key: str, write, order: tuple[str, ...] = ()):
+        """One shuffle by ``key``; each executor task calls ``write`` on its groups' rows (sorted by
+        ``order`` within) and sends back only what ``write`` returns (pickled): the rows never reach
+        the driver."""
         import pickle
         from pyspark.sql import functions as F
         sdf = self.session.sql(self.con.compile(expr))
-        sdf = sdf.repartition(F.col(key)).sortWithinPartitions(F.col(key))
+        sdf = sdf.repartition(F.col(key)).sortWithinPartitions(*[F.col(k).asc_nulls_last() for k in (key, *order)])
         got = sdf.mapInArrow(_GroupWriter(key, write), "value string, result binary").collect()
         for row in sorted(got, key=lambda r: r["value"]):
             yield row["value"], pickle.loads(row["result"])

@@ -13,6 +13,8 @@ import sys
 from pathlib import Path
 
 import pandas as pd
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
 import pytest
 
 from labeler import JobConfig, LabelConfig, Taxonomy, label_interactions
@@ -56,6 +58,15 @@ def assert_same_outputs(a: Path, b: Path) -> None:
     assert sorted(x) == sorted(y)
     differ = [k for k in x if x[k] != y[k]]
     assert not differ, f"files differ: {differ[:5]}"
+
+
+def assert_label_files_in_order(work: Path) -> None:
+    """Every label file of the current generation holds its rows in the contract's order (the
+    engine sorts them; the job writes them as they come when a date has no earlier rows)."""
+    from labeler.job.outputs import LABEL_SORT
+    for f in sorted((current_outputs(work) / "labels").rglob("*.parquet")):
+        t = pq.read_table(f)
+        assert t.equals(t.take(pc.sort_indices(t, sort_keys=LABEL_SORT))), f
 
 
 def store_files(work: Path) -> dict[str, bytes]:
@@ -111,6 +122,7 @@ def test_incremental_runs_equal_one_full_run(tmp_path, scenario, name):
     full = run_job(make_config(root, work="full", labels=CONFIGS[name])).manifest
     assert full["mode"] == "full"
     assert_same_outputs(root / "work", root / "full")
+    assert_label_files_in_order(root / "work")
 
 
 @pytest.mark.parametrize("name", ["defaults", "support3_memory10_any_new", "label_from_inside_the_new_days"])

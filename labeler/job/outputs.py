@@ -127,8 +127,8 @@ class GenerationWriter:
     def write_stream(self, engine, expr) -> None:
         """Write the re-labelled rows of ``expr`` (with a string ``_date`` column), one date at a
         time, through ``engine.write_groups``: a distributed engine writes them from its workers."""
-        writer = DateWriter(self.gen, self.prev, self.users, self.versions, self.taxonomy_version)
-        for date, done in engine.write_groups(expr, "_date", writer):
+        writer = DateWriter(self.gen, self.prev, self.users, self.versions, self.taxonomy_version, presorted=True)
+        for date, done in engine.write_groups(expr, "_date", writer, order=tuple(k for k, _, _ in LABEL_SORT)):
             self._took(date, done)
         self.dates_written.sort()
 
@@ -200,11 +200,14 @@ class GenerationWriter:
 class DateWriter:
     """Writes one date's label file of a generation: the previous generation's rows of that date,
     less the re-labelled ``users`` (None: everyone), plus the new rows. Picklable, so a
-    distributed engine runs it where the rows are; returns the counts the run manifest needs."""
+    distributed engine runs it where the rows are; returns the counts the run manifest needs.
+    ``presorted``: the new rows come in the file's order (the engine sorted them, faster than
+    here), so a date without previous rows is written as it comes."""
 
-    def __init__(self, gen: Path, prev: Path | None, users: pa.Array | None, versions, taxonomy_version: str):
+    def __init__(self, gen: Path, prev: Path | None, users: pa.Array | None, versions, taxonomy_version: str,
+                 presorted: bool = False):
         self.gen, self.prev, self.users = gen, prev, users
-        self.versions, self.taxonomy_version = versions, taxonomy_version
+        self.versions, self.taxonomy_version, self.presorted = versions, taxonomy_version, presorted
 
     def __call__(self, date: str, new_rows: pa.Table | None) -> dict:
         done = {"counts": {}, "rows": 0, "written": False}
@@ -218,8 +221,8 @@ class DateWriter:
             done["counts"] = {(int(lv), lb): int(n) for lv, lb, n in zip(
                 by.column("level").to_pylist(), by.column("label").to_pylist(), by.column("label_count").to_pylist())}
             done["rows"] = n = new_rows.num_rows
-            new_rows = new_rows.append_column("taxonomy_version", pa.array([self.taxonomy_version] * n, pa.string()))
-            pieces.append(new_rows.append_column("labels_version", pa.array([""] * n, pa.string())))
+            new_rows = new_rows.append_column("taxonomy_version", pa.repeat(pa.scalar(self.taxonomy_version, pa.string()), n))
+            pieces.append(new_rows.append_column("labels_version", pa.repeat(pa.scalar("", pa.string()), n)))
         if not pieces:
             return done
         table = pa.concat_tables([p.select(LABELS_SCHEMA.names).cast(LABELS_SCHEMA) for p in pieces])
@@ -227,8 +230,9 @@ class DateWriter:
             return done
         n = table.num_rows
         table = table.set_column(table.schema.get_field_index("labels_version"), "labels_version",
-                                 pa.array([self.versions(date)] * n, pa.string()))
-        write_table(_sorted(table, LABEL_SORT), part_path(self.gen, date), "write_labels")
+                                 pa.repeat(pa.scalar(self.versions(date), pa.string()), n))
+        in_order = self.presorted and new_rows is not None and new_rows.num_rows == n  # no previous rows
+        write_table(table if in_order else _sorted(table, LABEL_SORT), part_path(self.gen, date), "write_labels")
         done["written"] = True
         return done
 

@@ -23,8 +23,10 @@ import json
 import logging
 import os
 import shutil
+import threading
 import time
 import uuid
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import Any
 
@@ -103,6 +105,42 @@ class DateVersions:
 def _table(batches, schema: pa.Schema) -> pa.Table:
     """Record batches (in order) as one table of ``schema``."""
     return pa.concat_tables([pa.Table.from_batches([b]).cast(schema) for b in batches] or [schema.empty_table()])
+
+
+class PublishBeside:
+    """A store publish that runs beside the writing of the outputs: started in a thread as soon as
+    the changed rows are known (``start``), it writes its files while the outputs are written, and
+    switches the store only once they are (``finish``). If they fail (``abandon``), the store stays
+    as it was. The publish's Python inserts and the outputs' Arrow and Parquet work share the two
+    cores: on the daily benchmark the store stage's seconds mostly disappear into the outputs'."""
+
+    def __init__(self, publish):
+        """``publish(footprint_rows, history_rows, before_switch)`` -> the snapshot's name."""
+        self.publish, self.future = publish, None
+        self.pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="store")
+        self.written, self.ok = threading.Event(), False
+
+    def start(self, footprint_rows: pa.Table, history_rows: pa.Table) -> None:
+        self.future = self.pool.submit(self.publish, footprint_rows, history_rows, self._gate)
+
+    def _gate(self) -> None:
+        self.written.wait()
+        if not self.ok:
+            raise RuntimeError("the outputs were not written: the store snapshot is not switched to")
+
+    def finish(self) -> str:
+        if self.future is None:
+            raise RuntimeError("the store publish was never started: the changed rows never came")
+        self.ok = True
+        self.written.set()
+        try:
+            return self.future.result()
+        finally:
+            self.pool.shutdown()
+
+    def abandon(self) -> None:
+        self.written.set()
+        self.pool.shutdown(wait=True)  # its own error (it was not switched to) is the outputs' one's echo
 
 
 def _day(us: int) -> str:
@@ -198,10 +236,37 @@ class _Run:
         files = [str(work / p.events) for _, p in sorted(parts.items()) if p.rows]
         limit = getattr(eng.config, "bucket_rows", None)
         total = sum(p.rows for p in parts.values())
+        from ..store import publish_store
+        from ..store.publish import publishes_layered
+        # what this publish holds follows from these alone, so a re-run after a crash that came after
+        # the publish finds it already done and leaves the store as a clean run would
+        content_key = hashlib.sha256(json.dumps(
+            {"after": state and state.get("store_snapshot"), "mode": mode, "generation": gen_name,
+             "partitions": {n: {k: v for k, v in p.to_json().items() if k != "files"}  # content, not paths
+                            for n, p in sorted(parts.items())}, "taxonomy": tax.version,
+             "register": self.register_rel, "labels": json.loads(lab.canonical_json()),
+             "shards": cfg.run.store_shards, "tool": __version__}, sort_keys=True, default=str).encode()).hexdigest()
+        people, beside = None, None
+
+        def publish(fp_rows, user_rows, partial=None, before_switch=None) -> str:
+            return publish_store(work / "store", fp_rows, view, lab, history=user_rows, as_of=as_of,
+                                 shards=cfg.run.store_shards, retain=cfg.run.keep_generations,
+                                 changed_users=None if people is None else people.to_pylist(),
+                                 content_key=content_key, partial_users=partial, before_switch=before_switch)
+
+        def publish_changed(fp_rows, user_rows, before_switch) -> str:
+            # delta layers: the changed users only, and of a continued user only the topics met since
+            # the last watermark (their other rows are as published; lookups age them)
+            if continued:
+                stale = pc.and_(pc.is_in(fp_rows.column("user_id"), value_set=pa.array(continued, pa.string())),
+                                pc.less_equal(pc.cast(fp_rows.column("last_ts"), pa.int64()), state["watermark_us"]))
+                fp_rows = fp_rows.filter(pc.invert(stale))
+            return publish(fp_rows, user_rows, partial=continued, before_switch=before_switch)
+
         if mode == "full" and limit is not None and total > limit and not hasattr(eng, "write_partitioned"):
             writer = self._full_in_pieces(eng, view, files, as_of, work / "outputs" / gen_name, versions,
                                           tax.version, limit, total)
-            people, linked = None, 0
+            linked = 0
         else:
             user_array = pa.array(users, pa.string()) if users is not None else None
             runs = []
@@ -222,38 +287,24 @@ class _Run:
             people = None if user_array is None else pa.concat_arrays([user_array, pa.array(continued, pa.string())])
             writer = GenerationWriter(work / "outputs" / gen_name, prev_gen, user_array, start_date, versions,
                                       tax.version, people=people)
-            linked = self._write_generation(writer, runs, start_us, streamed=prev_gen is None and len(runs) == 1,
-                                            continued=pa.array(continued, pa.string()))
+            if people is not None and publishes_layered(work / "store", cfg.run.store_shards, view, lab):
+                beside = PublishBeside(publish_changed)
+            try:
+                linked = self._write_generation(writer, runs, start_us, streamed=prev_gen is None and len(runs) == 1,
+                                                continued=pa.array(continued, pa.string()),
+                                                on_new_rows=beside and beside.start)
+            except BaseException:
+                if beside is not None:
+                    beside.abandon()
+                raise
             self._timed("outputs", t0)
         failpoints.hit("after_outputs")
 
         t0 = time.perf_counter()
-        from ..store import publish_store
-        # what this publish holds follows from these alone, so a re-run after a crash that came after
-        # the publish finds it already done and leaves the store as a clean run would
-        content_key = hashlib.sha256(json.dumps(
-            {"after": state and state.get("store_snapshot"), "mode": mode, "generation": gen_name,
-             "partitions": {n: {k: v for k, v in p.to_json().items() if k != "files"}  # content, not paths
-                            for n, p in sorted(parts.items())}, "taxonomy": tax.version,
-             "register": self.register_rel, "labels": json.loads(lab.canonical_json()),
-             "shards": cfg.run.store_shards, "tool": __version__}, sort_keys=True, default=str).encode()).hexdigest()
-        from ..store.publish import publishes_layered
-        partial = None
-        if people is not None and publishes_layered(work / "store", cfg.run.store_shards, view, lab):
-            # delta layers: the changed users only, and of a continued user only the topics met since
-            # the last watermark (their other rows are as published; lookups age them)
-            fp_rows, user_rows, partial = writer.new_footprints, writer.new_people, continued
-            if continued:
-                stale = pc.and_(pc.is_in(fp_rows.column("user_id"), value_set=pa.array(continued, pa.string())),
-                                pc.less_equal(pc.cast(fp_rows.column("last_ts"), pa.int64()), state["watermark_us"]))
-                fp_rows = fp_rows.filter(pc.invert(stale))
+        if beside is not None:  # publishing since the changed rows were known: switch, now the outputs are written
+            snapshot = beside.finish()
         else:
-            fp_rows, user_rows = writer.gen / "footprints.parquet", writer.gen / "users.parquet"
-        snapshot = publish_store(work / "store", fp_rows, view, lab, history=user_rows,
-                                 as_of=pd.Timestamp(watermark_us, unit="us", tz="UTC"),
-                                 shards=cfg.run.store_shards, retain=cfg.run.keep_generations,
-                                 changed_users=None if people is None else people.to_pylist(),
-                                 content_key=content_key, partial_users=partial)
+            snapshot = publish(writer.gen / "footprints.parquet", writer.gen / "users.parquet")
         self._timed("store", t0)
         failpoints.hit("after_store")
 
@@ -507,11 +558,22 @@ class _Run:
         return sorted(exact), sorted(day_users - exact), (min(starts) if starts else None)
 
     def _write_generation(self, writer: GenerationWriter, runs: list, start_us: int | None, streamed: bool,
-                          continued: pa.Array | None = None) -> int:
+                          continued: pa.Array | None = None, on_new_rows=None) -> int:
         """The labels of ``runs`` from ``start_us``'s day on, their footprints and histories, into ``writer``
         (``streamed``: one full run, whose footprints come from the engine in key order; ``continued``:
-        users continued from carried state). Returns the number of previous dates linked unchanged."""
+        users continued from carried state; ``on_new_rows(footprints, history)``: called with the
+        changed rows once they are known, before anything is written).
+        Returns the number of previous dates linked unchanged."""
         linked = writer.link_unchanged()
+        if not streamed:
+            # the changed rows only (bounded by the day: of a continued user, the topics the day
+            # touched): read here, from files a distributed engine's workers wrote, to merge into
+            # the previous generation's files in one pass; handed to ``on_new_rows`` first, so the
+            # store can publish them while the labels and those files are written
+            fp = pa.concat_tables([_table(r.footprint_batches(touched_only=True), FOOTPRINTS_SCHEMA) for r in runs])
+            history = pa.concat_tables([_table(r.history_batches(), USERS_SCHEMA) for r in runs])
+            if on_new_rows is not None:
+                on_new_rows(fp, history)
         t = runs[0].labels if len(runs) == 1 else runs[0].labels.union(runs[1].labels, distinct=False)
         t = t.filter(t.ts_us >= (start_us // DAY_US) * DAY_US) if start_us is not None else t
         writer.write_stream(runs[0].engine, t.mutate(_date=t.ts.date().cast("string")).drop("ts_us"))
@@ -519,11 +581,6 @@ class _Run:
         if streamed:
             writer.write_people(runs[0].footprint_batches(), runs[0].history_batches(), self._aged)
         else:
-            # the changed rows only (bounded by the day: of a continued user, the topics the day
-            # touched): read here, from files a distributed engine's workers wrote, to merge into
-            # the previous generation's files in one pass
-            fp = pa.concat_tables([_table(r.footprint_batches(touched_only=True), FOOTPRINTS_SCHEMA) for r in runs])
-            history = pa.concat_tables([_table(r.history_batches(), USERS_SCHEMA) for r in runs])
             for r in runs:  # the engine's cached tables are done with: their memory goes before the merge's
                 r.release()
             writer.write_people(fp, history, self._aged, continued=continued)
