@@ -207,7 +207,6 @@ def test_a_day_of_only_new_users_is_continued_from_empty_state(tmp_path, scenari
     write_days(day, root / "interactions", [dates[20]])
     m = run_job(cfg).manifest
     assert m["relabelled_users"] == 0 and m["continued_users"] == day["user_id"].nunique()
-    import pyarrow.parquet as pq
     labels = pq.read_table(current_outputs(root / "work") / "labels" / f"date={dates[20]}").to_pandas()
     first = labels[labels["user_id"].str.startswith("new-")].groupby("user_id").head(1)
     assert (first["history_len"] == 0).all() and first["label"].isin(["cold_start", "unplaced"]).all()
@@ -221,7 +220,6 @@ def test_a_day_of_only_new_users_is_continued_from_empty_state(tmp_path, scenari
 def test_job_labels_are_the_library_labels(tmp_path, scenario):
     """After incremental runs the job's labels are, row for row, what label_interactions gives on
     the whole log with the same taxonomy (the job adds only the per-date labels_version)."""
-    import pyarrow.parquet as pq
     root, dates = setup_root(tmp_path, scenario, 25)
     items, ev = scenario
     cfg = make_config(root)
@@ -307,7 +305,6 @@ def test_late_events_in_a_new_partition_and_the_horizon(tmp_path, scenario):
     assert m["relabelled_from"] == (start - pd.Timedelta(days=3)).strftime("%Y-%m-%d")
     quarantine = pd.read_parquet(next((root / "work" / "quarantine").glob(f"{new_day}-*.parquet")))
     assert quarantine["event_id"].tolist() == ["beyond"]
-    import pyarrow.parquet as pq
     labels = pq.read_table(current_outputs(root / "work") / "labels").to_pandas()
     assert "within" in set(labels["event_id"]) and "beyond" not in set(labels["event_id"])
     run_job(make_config(root, work="full", late_horizon_days=5))
@@ -315,7 +312,6 @@ def test_late_events_in_a_new_partition_and_the_horizon(tmp_path, scenario):
 
 
 def _label_rows(work: Path, event_ids) -> pd.DataFrame:
-    import pyarrow.parquet as pq
     labels = pq.read_table(current_outputs(work) / "labels").to_pandas()
     return labels[labels["event_id"].isin(event_ids)].sort_values("event_id")
 
@@ -354,7 +350,6 @@ def test_items_first_seen_after_their_interactions(tmp_path, scenario, backfill)
 def test_changed_item_text_takes_effect_from_the_change(tmp_path, scenario):
     """An item whose text (here: category) changes keeps its old topic for interactions up to the
     watermark of the run that saw the change, and gets the new one after."""
-    import pyarrow.parquet as pq
     root, dates = setup_root(tmp_path, scenario, 20)
     items, ev = scenario
     cfg = make_config(root)
@@ -604,7 +599,6 @@ def test_rebuild_taxonomy_switches_only_when_the_gate_passes(tmp_path, scenario,
     after = load_state(root / "work")
     if passes:
         assert m["mode"] == "full" and after["taxonomy"]["version"] == refresh["candidate"]
-        import pyarrow.parquet as pq
         labels = pq.read_table(current_outputs(root / "work") / "labels").to_pandas()
         assert set(labels["taxonomy_version"]) == {refresh["candidate"]}
         run_job(make_config(root, work="fresh"))  # a fresh job on the edited items: same outputs
