@@ -324,12 +324,14 @@ def _groups(batches, key: str, write):
     for batch in batches:
         tb = pa.Table.from_batches([batch]) if isinstance(batch, pa.RecordBatch) else batch
         values = tb.column(key)
-        for value in pc.unique(values).to_pylist():
+        distinct = pc.unique(values).to_pylist()
+        for value in distinct:
             if value != current and pending:
                 yield current, write(current, pa.concat_tables(pending))
                 pending = []
             current = value
-            pending.append(tb.filter(pc.equal(values, value)).drop_columns([key]))
+            rows = tb if len(distinct) == 1 else tb.filter(pc.equal(values, value))
+            pending.append(rows.drop_columns([key]))
     if pending:
         yield current, write(current, pa.concat_tables(pending))
 

@@ -251,7 +251,7 @@ class _Run:
         def publish(fp_rows, user_rows, partial=None, before_switch=None) -> str:
             return publish_store(work / "store", fp_rows, view, lab, history=user_rows, as_of=as_of,
                                  shards=cfg.run.store_shards, retain=cfg.run.keep_generations,
-                                 changed_users=None if people is None else people.to_pylist(),
+                                 changed_users=people,
                                  content_key=content_key, partial_users=partial, before_switch=before_switch)
 
         def publish_changed(fp_rows, user_rows, before_switch) -> str:
@@ -261,7 +261,7 @@ class _Run:
                 stale = pc.and_(pc.is_in(fp_rows.column("user_id"), value_set=pa.array(continued, pa.string())),
                                 pc.less_equal(pc.cast(fp_rows.column("last_ts"), pa.int64()), state["watermark_us"]))
                 fp_rows = fp_rows.filter(pc.invert(stale))
-            return publish(fp_rows, user_rows, partial=continued, before_switch=before_switch)
+            return publish(fp_rows, user_rows, partial=pa.array(continued, pa.string()), before_switch=before_switch)
 
         if mode == "full" and limit is not None and total > limit and not hasattr(eng, "write_partitioned"):
             writer = self._full_in_pieces(eng, view, files, as_of, work / "outputs" / gen_name, versions,

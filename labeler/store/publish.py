@@ -82,8 +82,8 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
                  previous["name"], content_key[:12])
         return previous["name"]
     layered = changed_users is not None and _layerable(previous, shards, taxonomy, cfg)
-    only = pa.array([str(u) for u in changed_users], pa.string()) if layered else None
-    partial = pa.array([str(u) for u in partial_users or ()], pa.string())
+    only = _ids(changed_users) if layered else None
+    partial = _ids(partial_users or ())
     if len(partial) and not layered:
         raise InputError("partial_users needs a layered publish (the current snapshot must have this format, shard "
                          "count, taxonomy and settings); publish every row of every user instead.",
@@ -213,6 +213,13 @@ def _arrow(table, only: pa.Array | None) -> pa.Table:
     if only is not None:
         table = table.filter(pc.is_in(table.column("user_id"), value_set=only))
     return table
+
+
+def _ids(values) -> pa.Array:
+    """User ids as an Arrow string array (an Arrow array is taken as it is, without a Python copy)."""
+    if isinstance(values, (pa.Array, pa.ChunkedArray)):
+        return pc.cast(values, pa.string())
+    return pa.array([str(u) for u in values], pa.string())
 
 
 def _without_tombstoned(table: pa.Table, gone: set[str]) -> pa.Table:
