@@ -323,30 +323,36 @@ def footprint_rows(rows: ir.Table, transitions: ir.Table, cfg: LabelConfig, as_o
         qual = qual.semi_join(qual.filter(qual.item_id.notnull()).select(keys).distinct(), keys)
     in_window = qual.ts_us >= (end - cfg.memory_us) if cfg.memory_us is not None else qual.ts_us.notnull()
     support = in_window.cast("int64").sum()
+    # the last min_support qualifying times (stand-ins' included): with one, the group's latest
+    last_one = {"_latest": qual.ts_us.max()} if cfg.min_support == 1 else {}
     if carried is None:
         agg = qual.group_by(keys).aggregate(
             first_ts=qual.ts.min(), last_ts=qual.ts.max(), interactions=qual.count(),
-            engaged_interactions=(qual.engagement >= cfg.engaged_min).cast("int64").sum(), _support=support)
+            engaged_interactions=(qual.engagement >= cfg.engaged_min).cast("int64").sum(), _support=support,
+            **last_one)
     else:  # counts from the rows' own interactions (stand-ins have no item), support from all
         own = qual.item_id.notnull()
         agg = qual.group_by(keys).aggregate(
             first_ts=qual.ts.min(where=own), last_ts=qual.ts.max(where=own),
             interactions=own.cast("int64").sum(),
             engaged_interactions=(own & (qual.engagement >= cfg.engaged_min)).cast("int64").sum(),
-            _support=support)
+            _support=support, **last_one)
     tr = transitions.filter((transitions.p <= end) & (transitions.d > 0))
     if carried is not None:  # only starts after the watermark are the stand-ins' and the real history's alike
         tr = tr.filter(tr.p > carried_until_us + 1)
     since = tr.group_by(keys).aggregate(_since_us=tr.p.max() - 1)
-    latest = qual.mutate(_n=ibis.row_number().over(group_by=[qual.user_id, qual.level, qual.topic_id],
-                                                   order_by=ibis.desc(qual.ts_us)))
-    latest = latest.filter(latest._n < cfg.min_support)
-    recent = latest.group_by(keys).aggregate(recent_us=latest.ts_us.collect().sort())
     history = user_history(rows, as_of_us) if history is None else history
     j = agg.left_join(since, keys)
     out = j.select(*agg.columns, _since_us=j._since_us)
-    j = out.left_join(recent, keys)
-    out = j.select(*out.columns, recent_us=j.recent_us)
+    if last_one:
+        out = out.mutate(recent_us=ibis.array([out._latest])).drop("_latest")
+    else:
+        latest = qual.mutate(_n=ibis.row_number().over(group_by=[qual.user_id, qual.level, qual.topic_id],
+                                                       order_by=ibis.desc(qual.ts_us)))
+        latest = latest.filter(latest._n < cfg.min_support)
+        recent = latest.group_by(keys).aggregate(recent_us=latest.ts_us.collect().sort())
+        j = out.left_join(recent, keys)
+        out = j.select(*out.columns, recent_us=j.recent_us)
     if carried is not None:
         c = carried.select(_cu="user_id", _cl="level", _ct="topic_id", _cfirst="first_ts", _clast="last_ts",
                            _cn="interactions", _ce="engaged_interactions", _csince="known_since_us")
