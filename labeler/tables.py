@@ -236,7 +236,11 @@ def normalize_timestamps(df: pd.DataFrame, column: str, source: str, cfg: InputC
                              source=source, column=column, sample=_sample(df, ts.index[:3], [column]),
                              hint="Store timestamps with a timezone or set input.timezone.")
         ts = _localize(ts, cfg.timezone, df, column, source)
-    return ts.dt.tz_convert("UTC").dt.floor("us").astype("datetime64[us, UTC]")
+    if str(ts.dt.tz) != "UTC":
+        ts = ts.dt.tz_convert("UTC")
+    if getattr(ts.dtype, "unit", "ns") == "ns":  # coarser units are whole microseconds already
+        ts = ts.dt.floor("us")
+    return ts.astype("datetime64[us, UTC]")
 
 
 def normalize_interactions(df: pd.DataFrame, cfg: InputConfig | None = None,
@@ -285,8 +289,9 @@ def normalize_interactions(df: pd.DataFrame, cfg: InputConfig | None = None,
             else:  # mixed Python values: each one rendered, missing ones kept missing
                 out[col] = s.map(lambda v: None if v is None or (isinstance(v, float) and math.isnan(v))
                                  else str(v)).astype("str")
-        else:
-            out[col] = None
+        else:  # all missing, as text (an Arrow-backed column: no Python object per row)
+            out[col] = pa.nulls(len(df), pa.large_string()).to_pandas(
+                types_mapper={pa.large_string(): pd.StringDtype("pyarrow", na_value=np.nan)}.get).array
     out = out.reset_index(drop=True)
     intake.rows_out = len(out)
     return out, intake
