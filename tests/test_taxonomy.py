@@ -298,3 +298,54 @@ def test_manifest_records_counts_and_config(built, tmp_path):
     assert m["model"] == "hashing-128" and m["config"]["min_cluster_size"] == 8
     assert set(m["files"]) >= {"topics.parquet", "item_topics.parquet", "centroids.npy"}
     assert m["n_items"] == 160
+
+
+def _demo_keywords(level: str):
+    """Keywords and names of the demo catalog's true groups (its themes or hobbies, off-topic items
+    as one more group): naming is checked apart from clustering."""
+    from labeler.demo import generate_scenario
+    from labeler.taxonomy.build import item_text
+    from labeler.taxonomy.names import class_tfidf_keywords, distinct_names
+    s = generate_scenario()
+    truth = s.truth_items.set_index("item_id").loc[s.items["item_id"]]
+    groups = truth[level].where(truth["kind"] != "off_topic", "off topic").reset_index(drop=True)
+    texts = item_text(s.items, ("title", "description", "tags")).reset_index(drop=True)
+    kw = class_tfidf_keywords(texts, groups)
+    return texts, groups, kw, distinct_names(kw)
+
+
+@pytest.mark.parametrize("level", ["theme", "hobby"])
+def test_demo_names_hold_no_stop_or_filler_words_and_are_distinct(level):
+    """Every word of every name is neither an English stop word (scikit-learn's list) nor one of
+    our fillers, and is distinctive: in at least twice as large a share of its group's items as
+    of the other items. Names differ within a level."""
+    from sklearn.feature_extraction.text import ENGLISH_STOP_WORDS
+    from labeler.taxonomy.names import FILLERS, MIN_LIFT
+    texts, groups, kw, names = _demo_keywords(level)
+    assert len(set(names.values())) == len(names)
+    lower = texts.str.lower()
+    for group, name in names.items():
+        for term in name.split(" / "):
+            assert not set(term.split()) & (ENGLISH_STOP_WORDS | FILLERS), (group, name)
+            has = lower.str.contains(rf"\b{term}\b", regex=True)
+            inside, outside = has[groups == group].mean(), has[groups != group].mean()
+            assert inside >= MIN_LIFT * outside, (group, term, inside, outside)
+
+
+def test_a_name_does_not_depend_on_the_order_of_its_keywords():
+    """The same keywords ranked in another order give the same name (so a rebuild that only
+    reorders them renames nothing); a pair of words replaces its single words."""
+    from labeler.taxonomy.names import readable_name
+    _, _, kw, names = _demo_keywords("theme")
+    for group, words in kw.items():
+        chosen = names[group].split(" / ")
+        assert readable_name(chosen[::-1], len(chosen)) == readable_name(chosen, len(chosen)) == names[group]
+    assert readable_name(["bread", "sourdough", "sourdough bread"], 2) == "sourdough bread"
+
+
+def test_names_collide_only_after_every_keyword_is_used():
+    """Two topics whose first keywords agree are told apart by their next ones, and by their ids
+    when their keywords run out."""
+    from labeler.taxonomy.names import distinct_names
+    got = distinct_names({"t1": ["bread", "rye"], "t2": ["bread", "cake"], "t3": ["bread"], "t4": ["bread"]}, 1)
+    assert got == {"t1": "bread / rye", "t2": "bread / cake", "t3": "bread (t3)", "t4": "bread (t4)"}

@@ -25,7 +25,7 @@ from ..embed import EmbeddingCache, SentenceEmbedder, embed_texts
 from ..tables import item_text, normalize_items
 from .ids import format_id, id_number, match_topics, members_by_topic
 from .model import FORMAT, Taxonomy, hash_strings, items_empty_text, placement_rows
-from .names import class_tfidf_keywords, readable_name
+from .names import class_tfidf_keywords, distinct_names
 
 log = logging.getLogger(__name__)
 
@@ -295,9 +295,10 @@ def build_taxonomy(items: pd.DataFrame, config: TaxonomyConfig | None = None, *,
         kw = class_tfidf_keywords(texts.loc[sub["item_id"]].reset_index(drop=True),
                                   sub["topic_id"].reset_index(drop=True), cfg.keywords_per_topic)
         size = sub.groupby("topic_id").size()
-        for tid in sorted(set(sub["topic_id"])):
-            topic_rows.append((tid, level, parent.get(tid) if level == 1 else None,
-                               readable_name(kw.get(tid, []), cfg.name_words), kw.get(tid, []),
+        level_ids = sorted(set(sub["topic_id"]))
+        names = distinct_names({tid: kw.get(tid, []) for tid in level_ids}, cfg.name_words)
+        for tid in level_ids:
+            topic_rows.append((tid, level, parent.get(tid) if level == 1 else None, names[tid], kw.get(tid, []),
                                int(size[tid]), first_version.get(tid, version)))
     topics = pd.DataFrame(topic_rows, columns=["topic_id", "level", "parent_id", "name", "keywords",
                                                "size", "first_version"])
