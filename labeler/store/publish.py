@@ -114,8 +114,10 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
     tmp.mkdir()
     items_digest = _items(tmp / "items.sqlite", taxonomy, previous, root)
     topics, people = _shard_rows(fp, users, partial)
+    del fp, users  # the shards' rows are copies: whatever was copied on the way can go now
     n_users, n_rows = people.num_rows, topics.num_rows
     pieces = _by_shard(topics, people, shards)
+    del topics, people
     if layered:
         plan = _plan_layers(root / "snapshots" / previous["name"], previous, tmp, seq, pieces, compact_share,
                             max_layers)
@@ -211,7 +213,9 @@ def _arrow(table, only: pa.Array | None) -> pa.Table:
     table = table.set_column(table.schema.get_field_index("user_id"), "user_id",
                              pc.cast(table.column("user_id"), pa.string()))
     if only is not None:
-        table = table.filter(pc.is_in(table.column("user_id"), value_set=only))
+        keep = pc.is_in(table.column("user_id"), value_set=only)
+        if pc.sum(keep).as_py() != table.num_rows:  # filtering every row in would only copy them
+            table = table.filter(keep)
     return table
 
 
@@ -369,12 +373,12 @@ def _recent_text(values) -> pa.Array:
 
 
 def _shard_rows(fp: pa.Table, users: pa.Table, partial: pa.Array) -> tuple[pa.Table, pa.Table]:
-    """(topic rows, users) as Arrow tables in the shards' column layout, sorted by their keys.
+    """(topic rows, users) as Arrow tables in the shards' column layout (in no order: ``_by_shard``
+    sorts them).
     ``whole`` is 0 for the users in ``partial`` (their rows only overlay older ones), else 1."""
     people = pa.table({"user_id": users.column("user_id"),
                        "history_len": pc.fill_null(pc.cast(users.column("history_len"), pa.int64()), 0),
                        "whole": pc.cast(pc.invert(pc.is_in(users.column("user_id"), value_set=partial)), pa.int64())})
-    people = people.take(pc.sort_indices(people, [("user_id", "ascending")]))
     n = fp.num_rows
     col = lambda name: fp.column(name) if name in fp.column_names else None  # noqa: E731
     user_id = fp.column("user_id")
@@ -388,17 +392,24 @@ def _shard_rows(fp: pa.Table, users: pa.Table, partial: pa.Array) -> tuple[pa.Ta
         "known_since_us": _us(col("known_since"), n),
         "recent": _recent_text(pc.cast(fp.column("recent_us"), pa.list_(pa.int64()))),
         "history_len": people.column("history_len").take(pc.index_in(user_id, value_set=people.column("user_id")))})
-    topics = topics.take(pc.sort_indices(topics, [("user_id", "ascending"), ("level", "ascending"),
-                                                  ("topic_id", "ascending")]))
     return topics, people
 
 
 def _by_shard(topics: pa.Table, people: pa.Table, shards: int) -> list[tuple[pa.Table, pa.Table]]:
-    """Each shard's (topic rows, users), in key order."""
+    """Each shard's (topic rows, users), in key order: slices of one sorted copy of each table
+    (ordered by key, then stably by shard), not a sorted copy and then a filtered one per shard."""
     ids = people.column("user_id").to_pylist()
-    shard = pa.array(np.fromiter((shard_of(u, shards) for u in ids), dtype=np.int64, count=len(ids)))
-    topic_shard = shard.take(pc.index_in(topics.column("user_id"), value_set=people.column("user_id")))
-    return [(topics.filter(pc.equal(topic_shard, k)), people.filter(pc.equal(shard, k))) for k in range(shards)]
+    shard = np.fromiter((shard_of(u, shards) for u in ids), dtype=np.int64, count=len(ids))
+    at = pc.index_in(topics.column("user_id"), value_set=people.column("user_id"))
+    topic_shard = shard[at.to_numpy(zero_copy_only=False)] if len(at) else np.zeros(0, np.int64)
+    pieces = []
+    for table, of, keys in ((topics, topic_shard, ["user_id", "level", "topic_id"]), (people, shard, ["user_id"])):
+        by_key = pc.sort_indices(table, [(k, "ascending") for k in keys]).to_numpy()
+        order = by_key[np.argsort(of[by_key], kind="stable")]
+        table = table.take(pa.array(order))
+        ends = np.searchsorted(of[order], np.arange(shards + 1))
+        pieces.append([table.slice(ends[k], ends[k + 1] - ends[k]) for k in range(shards)])
+    return list(zip(*pieces))
 
 
 def _shard_digest(topics: pa.Table, people: pa.Table) -> str:
