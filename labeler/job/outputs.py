@@ -146,8 +146,7 @@ class GenerationWriter:
         events touched: their other previous rows stay, aged, with the new ``history_len``.
         The previous files are sorted, so only the new rows are sorted, and the previous file is
         streamed one row group at a time and merged with them: memory follows the new rows, not
-        the population. ``new_footprints`` and ``new_people`` keep just the new rows;
-        ``footprint_rows`` and ``user_rows`` count all.
+        the population. ``footprint_rows`` and ``user_rows`` count all the rows written.
         """
         merge = self.prev is not None and self.people is not None
         if isinstance(footprints, pa.Table):
@@ -174,8 +173,6 @@ class GenerationWriter:
         self.user_rows = write_merged(self.prev / "users.parquet" if merge else None, self.people, us,
                                       lambda t: t, USERS_SCHEMA, self.gen / "users.parquet", "write_footprints",
                                       [("user_id", "ascending", "at_end")])
-        self.new_footprints = fp if isinstance(fp, pa.Table) else None
-        self.new_people = us if isinstance(us, pa.Table) else None
 
     def join(self, pieces: list["GenerationWriter"]) -> None:
         """Fill this (new, empty) generation with ``pieces``: generations of disjoint ranges of
@@ -194,7 +191,6 @@ class GenerationWriter:
                 self.counts[key] = self.counts.get(key, 0) + n
             self.rows_written += w.rows_written
         self.dates_written = dates
-        self.new_footprints = self.new_people = None
 
 
 class DateWriter:

@@ -247,6 +247,7 @@ class _Run:
              "register": self.register_rel, "labels": json.loads(lab.canonical_json()),
              "shards": cfg.run.store_shards, "tool": __version__}, sort_keys=True, default=str).encode()).hexdigest()
         people, beside = None, None
+        continued_ids = pa.array(continued, pa.string())
 
         def publish(fp_rows, user_rows, partial=None, before_switch=None) -> str:
             return publish_store(work / "store", fp_rows, view, lab, history=user_rows, as_of=as_of,
@@ -258,10 +259,10 @@ class _Run:
             # delta layers: the changed users only, and of a continued user only the topics met since
             # the last watermark (their other rows are as published; lookups age them)
             if continued:
-                stale = pc.and_(pc.is_in(fp_rows.column("user_id"), value_set=pa.array(continued, pa.string())),
+                stale = pc.and_(pc.is_in(fp_rows.column("user_id"), value_set=continued_ids),
                                 pc.less_equal(pc.cast(fp_rows.column("last_ts"), pa.int64()), state["watermark_us"]))
                 fp_rows = fp_rows.filter(pc.invert(stale))
-            return publish(fp_rows, user_rows, partial=pa.array(continued, pa.string()), before_switch=before_switch)
+            return publish(fp_rows, user_rows, partial=continued_ids, before_switch=before_switch)
 
         if mode == "full" and limit is not None and total > limit and not hasattr(eng, "write_partitioned"):
             writer = self._full_in_pieces(eng, view, files, as_of, work / "outputs" / gen_name, versions,
@@ -275,23 +276,22 @@ class _Run:
                                         as_of=as_of).materialize())
             if continued:  # the day's events only, continued from the state carried at the last watermark
                 new_files = [str(work / parts[n].events) for n in staged_new if parts[n].rows]
-                ids = pa.array(continued, pa.string())
                 carried = Carried(prev_gen / "footprints.parquet", prev_gen / "users.parquet", state["watermark_us"],
-                                  ids)
-                runs.append(plan_labels(self._staged(eng, new_files, ids), view, lab, engine=eng, as_of=as_of,
+                                  continued_ids)
+                runs.append(plan_labels(self._staged(eng, new_files, continued_ids), view, lab, engine=eng, as_of=as_of,
                                         carried=carried).materialize())
             self._timed("labels", t0)
             failpoints.hit("after_labels")
 
             t0 = time.perf_counter()
-            people = None if user_array is None else pa.concat_arrays([user_array, pa.array(continued, pa.string())])
+            people = None if user_array is None else pa.concat_arrays([user_array, continued_ids])
             writer = GenerationWriter(work / "outputs" / gen_name, prev_gen, user_array, start_date, versions,
                                       tax.version, people=people)
             if people is not None and publishes_layered(work / "store", cfg.run.store_shards, view, lab):
                 beside = PublishBeside(publish_changed)
             try:
                 linked = self._write_generation(writer, runs, start_us, streamed=prev_gen is None and len(runs) == 1,
-                                                continued=pa.array(continued, pa.string()),
+                                                continued=continued_ids,
                                                 on_new_rows=beside and beside.start)
             except BaseException:
                 if beside is not None:

@@ -10,15 +10,16 @@ of common fillers (``FILLERS``: words any text uses, such as "just", "really" or
 count. Only *distinctive* terms are ranked: a term must be in at least ``min_share`` of the topic's
 items (a word of one item's text says nothing of the topic) and in at least ``min_lift`` times
 as large a share of them as of the other topics' items (a word every topic uses, such as the
-phrasing of a template, is filler whatever its count). A name is up to ``words`` of those keywords, listed alphabetically, so the same keywords give
-the same name in whatever order they rank; names are made distinct within a level.
+phrasing of a template, is filler whatever its count). A name is up to ``words`` of those
+keywords, listed alphabetically, so the same keywords give the same name in whatever order they
+rank; names are made distinct within a level.
 """
 from __future__ import annotations
 
+import re
+
 import numpy as np
 import pandas as pd
-
-import re
 
 MIN_SHARE = 0.05
 MIN_LIFT = 2.0
