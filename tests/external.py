@@ -75,11 +75,12 @@ def _wordnet_dir() -> Path:
     return data.parent
 
 
-@functools.lru_cache(maxsize=1)
-def wordnet_nouns() -> pd.DataFrame:
-    """Noun synsets: item_id (offset), lemma, gloss, lexfile (lexicographer file number, 3..28)."""
+@functools.lru_cache(maxsize=4)
+def wordnet_synsets(pos: str = "noun") -> pd.DataFrame:
+    """Synsets of one part of speech (``noun``, ``verb``, ``adj`` or ``adv``): item_id (offset),
+    lemma, gloss, lexfile (lexicographer file number; nouns are 3..28)."""
     rows = []
-    with open(_wordnet_dir() / "data.noun", encoding="utf-8") as f:
+    with open(_wordnet_dir() / f"data.{pos}", encoding="utf-8") as f:
         for line in f:
             if line.startswith("  "):  # licence header
                 continue
@@ -89,3 +90,8 @@ def wordnet_nouns() -> pd.DataFrame:
             words = [parts[4 + 2 * k].replace("_", " ") for k in range(n_words)]
             rows.append((offset, ", ".join(words), gloss.strip(), lexfile))
     return pd.DataFrame(rows, columns=["item_id", "lemma", "gloss", "lexfile"])
+
+
+def wordnet_nouns() -> pd.DataFrame:
+    """Noun synsets: item_id (offset), lemma, gloss, lexfile (lexicographer file number, 3..28)."""
+    return wordnet_synsets("noun")
