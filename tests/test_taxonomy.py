@@ -273,6 +273,24 @@ def test_a_topic_holding_most_items_is_reported():
     assert balanced.manifest["warnings"] == []
 
 
+def test_coarse_groups_follow_direction_from_the_catalog_mean_not_closeness_to_it():
+    """Fine centres that share a large common part (a site's templates) and differ by residuals of
+    unequal size: the coarse level groups them by the direction of their residual (three planted
+    groups, recovered exactly). Ward on the raw centres instead lumps the near-mean centres of
+    every group together, which is how the demo once got a coarse topic of 62% of its items."""
+    from sklearn.metrics import adjusted_rand_score
+    from labeler.taxonomy.build import _coarse
+    rng = np.random.default_rng(3)
+    dim, common = 32, np.eye(32)[0] * 4.0
+    directions = np.eye(dim)[1:4]
+    truth = np.repeat([0, 1, 2], 4)
+    scale = np.tile([1.0, 0.9, 0.15, 0.1], 3)  # in each group two topics sit close to the mean
+    centres = common + scale[:, None] * (directions[truth] + 0.05 * rng.standard_normal((12, dim)))
+    cfg = TaxonomyConfig(coarse_topics=3)
+    assert adjusted_rand_score(truth, _coarse(centres, cfg, mean=common)) == 1.0
+    assert adjusted_rand_score(truth, _coarse(centres, cfg)) < 0.5
+
+
 def test_empty_text_items_are_unplaced_and_counted():
     """Items with no text are never placed; the manifest counts them."""
     from labeler.embed import HashingEmbedder

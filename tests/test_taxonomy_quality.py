@@ -82,8 +82,9 @@ def test_wordnet_taxonomy_within_002_of_embeddings_kmeans(seed):
     assert s["taxonomy_ami"] >= s["embeddings_kmeans_ami"] - 0.02
 
 
-def test_demo_fine_topics_match_true_themes():
-    """On the demo scenario the fine level recovers the true themes: AMI within 0.08 of KMeans told the theme count."""
+@functools.lru_cache(maxsize=None)
+def demo_build():
+    """The demo scenario (seed 7), its taxonomy with the real model, and its items' vectors."""
     from labeler.demo import generate_scenario
     from labeler.embed import EmbeddingCache, SentenceEmbedder, embed_texts
     from labeler.tables import item_text
@@ -92,12 +93,18 @@ def test_demo_fine_topics_match_true_themes():
     cache = cache_dir() / "embeddings"
     emb = SentenceEmbedder()
     tax = build_taxonomy(s.items, TaxonomyConfig(embedding_cache=str(cache)), embedder=emb, progress=False)
+    x, _ = embed_texts(item_text(s.items, TaxonomyConfig().text_columns).tolist(), emb,
+                       EmbeddingCache(cache, emb.name), progress=False)
+    return s, tax, np.asarray(x)
+
+
+def test_demo_fine_topics_match_true_themes():
+    """On the demo scenario the fine level recovers the true themes: AMI within 0.08 of KMeans told the theme count."""
+    s, tax, x = demo_build()
     truth = s.truth_items
     regular = truth["kind"] != "off_topic"
     placed = tax.item_topics[tax.item_topics["level"] == 1].set_index("item_id")["topic_id"]
     ours = truth["item_id"].map(placed).fillna("(unplaced)")
-    x, _ = embed_texts(item_text(s.items, TaxonomyConfig().text_columns).tolist(), emb,
-                       EmbeddingCache(cache, emb.name), progress=False)
     km = KMeans(truth.loc[regular, "theme"].nunique(), n_init=10, random_state=0).fit_predict(x)
     ami = adjusted_mutual_info_score(truth.loc[regular, "theme"], ours[regular])
     base = adjusted_mutual_info_score(truth.loc[regular, "theme"], km[regular.to_numpy()])
@@ -105,6 +112,33 @@ def test_demo_fine_topics_match_true_themes():
           f"{tax.manifest['topics_per_level']}")
     assert ami >= base - 0.08
     assert tax.manifest["n_unplaced"] / len(s.items) <= 0.05
+
+
+def test_demo_coarse_level_groups_hobbies_better_than_ward_on_raw_centres():
+    """The coarse level (Ward on fine centres taken from the catalog mean, unit length) against the
+    demo's true hobbies, next to Ward on the raw centres (the method before it) over the same fine
+    topics: at least as good, and no coarse topic holds half the items. The change was chosen on
+    this demo; on demo seeds 1-3 it scored 0.646/0.661/0.718 against 0.645/0.661/0.718 (equal or
+    better), and on WordNet nouns it moved level-0 AMI by at most 0.005 (README, Topics). The
+    issue's goal (0.80, no topic over 35%) is not met: this is printed, not asserted."""
+    from scipy.cluster.hierarchy import fcluster, linkage
+    s, tax, _ = demo_build()
+    truth = s.truth_items.set_index("item_id")
+    regular = truth["kind"] != "off_topic"
+    rows = tax.item_topics.drop_duplicates(["item_id", "level"]).pivot(index="item_id", columns="level",
+                                                                        values="topic_id")
+    coarse = truth.index.map(rows[0]).fillna("(unplaced)")
+    k = int(tax.topics.query("level == 0").shape[0])
+    raw = dict(zip(tax.centroid_topics, fcluster(linkage(tax.arrays["centroids"].astype(np.float64), "ward"), k,
+                                      "maxclust")))
+    before = truth.index.map(rows[1]).map(raw).fillna(-1)
+    ami = adjusted_mutual_info_score(truth.loc[regular, "hobby"], np.asarray(coarse)[regular.to_numpy()])
+    ami_raw = adjusted_mutual_info_score(truth.loc[regular, "hobby"], np.asarray(before)[regular.to_numpy()])
+    share = tax.topics.query("level == 0")["size"].max() / tax.topics.query("level == 0")["size"].sum()
+    print(f"\ndemo coarse level: AMI vs true hobbies {ami:.3f} (Ward on raw centres {ami_raw:.3f}), "
+          f"largest coarse topic {share:.0%} of the items")
+    assert ami >= ami_raw
+    assert share < 0.5
 
 
 def test_assign_agrees_with_build_on_the_real_model():

@@ -155,9 +155,14 @@ def _merge_close(x: np.ndarray, centroids: np.ndarray, similarity: float) -> np.
     return _merged(centroids, _sizes(x, centroids), groups)
 
 
-def _coarse(centroids: np.ndarray, cfg: TaxonomyConfig) -> np.ndarray:
+def _coarse(centroids: np.ndarray, cfg: TaxonomyConfig, mean: np.ndarray | None = None) -> np.ndarray:
     """Group fine centroids into coarse topics with Ward linkage.
 
+    The centres are first taken relative to ``mean`` (the catalog's mean vector) and scaled to
+    unit length: what every item shares (a site's title templates, its house style) then no longer
+    pulls the centres together, and the grouping follows how topics differ. On the demo this
+    took the coarse AMI against the true hobbies from 0.595 to 0.710 and its largest coarse topic
+    from 62% to 38% of the items; on WordNet nouns it changed level-0 AMI by at most 0.005.
     Without ``coarse_topics`` the count is the square root of the number of fine topics, a common
     rule of thumb (criteria such as silhouette keep rising toward no merging at all, and the
     largest dendrogram jump tends to pick two or three groups, too coarse to be useful).
@@ -168,7 +173,11 @@ def _coarse(centroids: np.ndarray, cfg: TaxonomyConfig) -> np.ndarray:
         return np.zeros(n, dtype=int)
     k = cfg.coarse_topics if cfg.coarse_topics is not None else int(round(np.sqrt(n)))
     k = max(1, min(k, n))
-    tree = linkage(centroids.astype(np.float64), method="ward")
+    x = centroids.astype(np.float64)
+    if mean is not None:
+        x = x - mean.astype(np.float64)
+        x /= np.maximum(np.linalg.norm(x, axis=1, keepdims=True), 1e-12)
+    tree = linkage(x, method="ward")
     return (fcluster(tree, t=k, criterion="maxclust") - 1).astype(int)
 
 
@@ -208,9 +217,14 @@ def _stable_ids(fine_members: dict, coarse_members: dict, previous, cfg: Taxonom
     return ids, first_version
 
 
+# names the build method: change it whenever the same inputs and settings would give other topics,
+# so that a taxonomy built differently never carries the same version
+METHOD = "learned/coarse-centred"
+
+
 def _input_version(items: pd.DataFrame, cfg: TaxonomyConfig, model: str, previous) -> str:
     texts = item_text(items, cfg.text_columns)
-    return hash_strings([FORMAT, "learned", __version__, model, cfg.meaning_json(),
+    return hash_strings([FORMAT, METHOD, __version__, model, cfg.meaning_json(),
                          previous.version if previous is not None else "",
                          *sorted(f"{i}\x01{t}" for i, t in zip(items["item_id"], texts))])
 
@@ -278,7 +292,7 @@ def build_taxonomy(items: pd.DataFrame, config: TaxonomyConfig | None = None, *,
         fine_idx, conf = place(vectors, centroids)
         placed = (conf >= cfg.min_confidence) & ~empty
     n_fine = len(centroids)
-    coarse_of_fine = _coarse(centroids, cfg)
+    coarse_of_fine = _coarse(centroids, cfg, vectors[fit_idx].mean(axis=0))
     item_ids = items["item_id"].to_numpy()
     fine_members = {c: set(item_ids[placed & (fine_idx == c)]) for c in range(n_fine)}
     coarse_members = {g: set().union(*(fine_members[c] for c in range(n_fine) if coarse_of_fine[c] == g))
