@@ -95,3 +95,34 @@ def wordnet_synsets(pos: str = "noun") -> pd.DataFrame:
 def wordnet_nouns() -> pd.DataFrame:
     """Noun synsets: item_id (offset), lemma, gloss, lexfile (lexicographer file number, 3..28)."""
     return wordnet_synsets("noun")
+
+
+@functools.lru_cache(maxsize=1)
+def wordnet_noun_parents() -> dict[str, str]:
+    """Each noun synset's first hypernym (``@``, or ``@i`` for an instance), by offset, from the
+    pointer list of data.noun (WordNet 3.0's database format, wndb(5)); the root has none."""
+    parents = {}
+    with open(_wordnet_dir() / "data.noun", encoding="utf-8") as f:
+        for line in f:
+            if line.startswith("  "):  # licence header
+                continue
+            parts = line.partition(" | ")[0].split()
+            n_words = int(parts[3], 16)
+            at = 4 + 2 * n_words
+            for k in range(int(parts[at])):
+                symbol, target, pos = parts[at + 1 + 4 * k: at + 4 + 4 * k]
+                if symbol in ("@", "@i") and pos == "n":
+                    parents[parts[0]] = target
+                    break
+    return parents
+
+
+def wordnet_ancestor(offset: str, depth: int) -> str:
+    """The synset's ancestor ``depth`` steps below the root along first hypernyms (the root,
+    entity, is depth 0); a synset no deeper than that is its own class."""
+    path = [offset]
+    parents = wordnet_noun_parents()
+    while path[-1] in parents:
+        path.append(parents[path[-1]])
+    path.reverse()
+    return path[depth] if len(path) > depth else offset

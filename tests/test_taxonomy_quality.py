@@ -31,21 +31,28 @@ PER_CATEGORY = 120
 
 
 @functools.lru_cache(maxsize=None)
-def wordnet_scores(seed: int) -> dict[str, float]:
-    """Build a taxonomy on a class-balanced WordNet sample and score it and two baselines."""
+def wordnet_build(seed: int):
+    """A class-balanced WordNet noun sample (``PER_CATEGORY`` per lexicographer file, lemma + gloss
+    as text), the taxonomy built on it with the defaults, and its embeddings."""
     from external import cache_dir, wordnet_nouns
     from labeler.embed import EmbeddingCache, SentenceEmbedder, embed_texts
     wn = wordnet_nouns()
     sample = wn.sample(frac=1.0, random_state=seed).groupby("lexfile").head(PER_CATEGORY)
     sample = sample.assign(title=sample["lemma"] + ": " + sample["gloss"]).reset_index(drop=True)
-    truth, k = sample["lexfile"], sample["lexfile"].nunique()
-    emb = SentenceEmbedder()
-    cache = cache_dir() / "embeddings"
+    emb, cache = SentenceEmbedder(), cache_dir() / "embeddings"
     tax = build_taxonomy(sample[["item_id", "title"]], TaxonomyConfig(text_columns=("title",),
                          embedding_cache=str(cache)), embedder=emb, progress=False)
+    x, _ = embed_texts(sample["title"].tolist(), emb, EmbeddingCache(cache, emb.name), progress=False)
+    return sample, tax, np.asarray(x)
+
+
+@functools.lru_cache(maxsize=None)
+def wordnet_scores(seed: int) -> dict[str, float]:
+    """Build a taxonomy on a class-balanced WordNet sample and score it and two baselines."""
+    sample, tax, x = wordnet_build(seed)
+    truth, k = sample["lexfile"], sample["lexfile"].nunique()
     placed = tax.item_topics[tax.item_topics["level"] == LEVEL].set_index("item_id")["topic_id"]
     ours = sample["item_id"].map(placed).fillna("(unplaced)")  # unplaced items count as one group
-    x, _ = embed_texts(sample["title"].tolist(), emb, EmbeddingCache(cache, emb.name), progress=False)
     runs = [KMeans(k, n_init=10, random_state=seed * 10 + r).fit_predict(x) for r in range(5)]
     km_amis = [float(adjusted_mutual_info_score(truth, lab)) for lab in runs]
     km = runs[int(np.argsort(km_amis)[2])]  # the median run of five
@@ -62,6 +69,46 @@ def wordnet_scores(seed: int) -> dict[str, float]:
     print(f"\nWordNet seed {seed}: " + ", ".join(f"{k}={v:.4f}" if isinstance(v, float) else f"{k}={v}"
                                                for k, v in scores.items()))
     return scores
+
+
+def kmeans_median_ami(x: np.ndarray, truth, k: int, seed: int) -> float:
+    """Median AMI of three KMeans starts told ``k`` clusters."""
+    amis = [adjusted_mutual_info_score(truth, KMeans(k, n_init=10, random_state=seed * 10 + r).fit_predict(x))
+            for r in range(3)]
+    return float(np.median(amis))
+
+
+@functools.lru_cache(maxsize=None)
+def wordnet_level_scores(seed: int, depth: int = 3) -> dict[str, float]:
+    """Both levels of a taxonomy built on a class-balanced WordNet sample, scored against the two-level
+    reference (bench/taxonomy_levels.py says how it is made), each beside KMeans told its true count."""
+    from external import wordnet_ancestor
+    sample, tax, x = wordnet_build(seed)
+    sample = sample.assign(ancestor=sample["item_id"].map(lambda o: wordnet_ancestor(o, depth)))
+    out = {"items": len(sample)}
+    for level, truth_col in ((0, "lexfile"), (1, "ancestor")):
+        placed = tax.item_topics[tax.item_topics["level"] == level].drop_duplicates("item_id")
+        ours = sample["item_id"].map(placed.set_index("item_id")["topic_id"]).fillna("(unplaced)")
+        truth = sample[truth_col]
+        out[f"level{level}_topics"] = int(placed["topic_id"].nunique())
+        out[f"level{level}_classes"] = int(truth.nunique())
+        out[f"level{level}_ami"] = float(adjusted_mutual_info_score(truth, ours))
+        out[f"level{level}_kmeans_ami"] = kmeans_median_ami(x, truth, truth.nunique(), seed)
+    return out
+
+
+@pytest.mark.external
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_wordnet_fine_level_matches_hypernym_classes_at_least_as_well_as_kmeans(seed):
+    """Level 1 against each synset's hypernym ancestor at depth 3 (WordNet 3.0 data.noun ``@``
+    pointers; depth fixed from class counts before any score): AMI at least that of embeddings +
+    KMeans told the true class count. Level 0 against the 26 lexicographer files is printed, not
+    asserted: with the square-root rule it has about 6 topics and scores 0.31-0.32 against KMeans's
+    0.42-0.44 (issue 16, item 1, not met)."""
+    s = wordnet_level_scores(seed)
+    print(f"\nWordNet two-level reference, seed {seed}: " + ", ".join(
+        f"{k}={v:.3f}" if isinstance(v, float) else f"{k}={v}" for k, v in s.items()))
+    assert s["level1_ami"] >= s["level1_kmeans_ami"]
 
 
 @pytest.mark.external
