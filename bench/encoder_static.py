@@ -23,7 +23,10 @@ file, the samples test_taxonomy_quality.py uses):
 Source of the data: WordNet 3.0 (Princeton University), Debian package `wordnet-base`, fetched as
 the tests fetch it. The model's vectors are cached by content hash under the test-data cache.
 
-    .venv/bin/python bench/encoder_static.py [--seeds 0 1 2] [--lam 0.03] [--speed-items 3000]
+With ``--sif A`` a text's tokens are averaged with smooth inverse frequency weights (tried at
+A = 0.001 on 2026-12-04: no gain, see the README).
+
+    .venv/bin/python bench/encoder_static.py [--seeds 0 1 2] [--lam 0.03] [--speed-items 3000] [--sif A]
 """
 from __future__ import annotations
 
@@ -55,13 +58,25 @@ def token_table(model) -> np.ndarray:
     return 0.3 * out / (np.linalg.norm(out, axis=1, keepdims=True) + 1e-12)
 
 
-def mean_matrix(tokenizer, texts: list[str], vocab: int) -> sp.csr_matrix:
-    """Rows: texts; each row averages the text's tokens (no [CLS]/[SEP])."""
+def mean_matrix(tokenizer, texts: list[str], vocab: int, weights: np.ndarray | None = None) -> sp.csr_matrix:
+    """Rows: texts; each row averages the text's tokens (no [CLS]/[SEP]), weighted by ``weights``
+    (one per vocabulary token; None: all equal)."""
     enc = tokenizer.encode_batch(texts, add_special_tokens=False)
     lens = np.array([len(e.ids) for e in enc])
     ind = np.concatenate([e.ids for e in enc]).astype(np.int64) if len(enc) else np.zeros(0, np.int64)
-    vals = np.repeat(1.0 / np.maximum(lens, 1), lens).astype(np.float32)
-    return sp.csr_matrix((vals, ind, np.concatenate([[0], np.cumsum(lens)])), shape=(len(texts), vocab))
+    w = np.ones(len(ind), np.float64) if weights is None else weights[ind].astype(np.float64)
+    starts = np.concatenate([[0], np.cumsum(lens)])
+    totals = np.bincount(np.repeat(np.arange(len(texts)), lens), weights=w, minlength=len(texts))
+    vals = (w / np.repeat(np.where(lens > 0, totals, 1.0), lens)).astype(np.float32)
+    return sp.csr_matrix((vals, ind, starts), shape=(len(texts), vocab))
+
+
+def sif_weights(tokenizer, texts: list[str], vocab: int, a: float) -> np.ndarray:
+    """Smooth inverse frequency weights a / (a + p(token)), p counted on ``texts`` (Arora, Liang and
+    Ma, ICLR 2017); a token never seen gets weight 1."""
+    enc = tokenizer.encode_batch(texts, add_special_tokens=False)
+    counts = np.bincount(np.concatenate([e.ids for e in enc]), minlength=vocab).astype(np.float64)
+    return a / (a + counts / counts.sum())
 
 
 def refine(m: sp.csr_matrix, y: np.ndarray, prior: np.ndarray, lam: float, iters: int = 100) -> np.ndarray:
@@ -86,11 +101,11 @@ def refine(m: sp.csr_matrix, y: np.ndarray, prior: np.ndarray, lam: float, iters
 class StaticEncoder:
     """Step 3, as an embedder the taxonomy build accepts."""
 
-    def __init__(self, tokenizer, table: np.ndarray, name: str):
-        self.tokenizer, self.table, self.name = tokenizer, table, name
+    def __init__(self, tokenizer, table: np.ndarray, name: str, weights: np.ndarray | None = None):
+        self.tokenizer, self.table, self.name, self.weights = tokenizer, table, name, weights
 
     def encode(self, texts):
-        x = mean_matrix(self.tokenizer, list(texts), self.table.shape[0]) @ self.table
+        x = mean_matrix(self.tokenizer, list(texts), self.table.shape[0], self.weights) @ self.table
         return (x / (np.linalg.norm(x, axis=1, keepdims=True) + 1e-12)).astype(np.float32)
 
 
@@ -107,6 +122,8 @@ def main() -> None:
     ap.add_argument("--seeds", type=int, nargs="+", default=[0, 1, 2])
     ap.add_argument("--lam", type=float, default=0.03)
     ap.add_argument("--speed-items", type=int, default=3000)
+    ap.add_argument("--sif", type=float, default=None, metavar="A",
+                    help="weight tokens by smooth inverse frequency a / (a + p), p from the distillation corpus")
     args = ap.parse_args()
 
     model_embedder = SentenceEmbedder()
@@ -126,9 +143,11 @@ def main() -> None:
     print(f"distillation corpus: {len(corpus):,} verb/adjective/adverb glosses embedded in "
           f"{time.perf_counter() - t0:.1f}s ({stats.hits:,} from the cache)")
     t0 = time.perf_counter()
-    table = refine(mean_matrix(tokenizer, corpus, prior.shape[0]), y, prior, args.lam)
-    print(f"refinement (lam {args.lam}): {time.perf_counter() - t0:.1f}s")
-    static = StaticEncoder(tokenizer, table, f"static-wordnet-other-pos-lam{args.lam}")
+    weights = None if args.sif is None else sif_weights(tokenizer, corpus, prior.shape[0], args.sif)
+    table = refine(mean_matrix(tokenizer, corpus, prior.shape[0], weights), y, prior, args.lam)
+    print(f"refinement (lam {args.lam}, token weights {'SIF a=%g' % args.sif if weights is not None else 'equal'}): "
+          f"{time.perf_counter() - t0:.1f}s")
+    static = StaticEncoder(tokenizer, table, f"static-wordnet-other-pos-lam{args.lam}-sif{args.sif}", weights)
 
     nouns = wordnet_synsets("noun")
     nouns = nouns.assign(title=nouns["lemma"] + ": " + nouns["gloss"])
