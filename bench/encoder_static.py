@@ -10,7 +10,9 @@ The method, step by step:
    that the mean of a text's token vectors predicts the model's vector of that text: a ridge
    regression pulled toward the prior, min |M W - Y|^2 + lam |W - T0|^2, solved by conjugate
    gradients. The corpus here is WordNet 3.0's verb, adjective and adverb glosses, so no noun text
-   is seen.
+   is seen; ``--fit-nouns N`` adds N noun glosses, none of them in a scored sample (what a catalog
+   would do: distil on a part of itself embedded with the model, encode the rest), and
+   ``--nouns-only`` keeps those alone.
 3. Encoding. Tokenise with the model's own fast tokenizer, average the token rows (a sparse
    product), L2-normalise. No transformer runs.
 
@@ -27,6 +29,7 @@ With ``--sif A`` a text's tokens are averaged with smooth inverse frequency weig
 A = 0.001 on 2026-12-04: no gain, see the README).
 
     .venv/bin/python bench/encoder_static.py [--seeds 0 1 2] [--lam 0.03] [--speed-items 3000] [--sif A]
+        [--fit-nouns N [--nouns-only]]
 """
 from __future__ import annotations
 
@@ -122,6 +125,11 @@ def main() -> None:
     ap.add_argument("--seeds", type=int, nargs="+", default=[0, 1, 2])
     ap.add_argument("--lam", type=float, default=0.03)
     ap.add_argument("--speed-items", type=int, default=3000)
+    ap.add_argument("--fit-nouns", type=int, default=0, metavar="N",
+                    help="add N noun glosses to the distillation corpus, none of them in a scored sample (a "
+                         "catalog distilling on a part of itself and encoding the rest)")
+    ap.add_argument("--nouns-only", action="store_true",
+                    help="with --fit-nouns: leave the verb/adjective/adverb glosses out of the corpus")
     ap.add_argument("--sif", type=float, default=None, metavar="A",
                     help="weight tokens by smooth inverse frequency a / (a + p), p from the distillation corpus")
     args = ap.parse_args()
@@ -138,9 +146,19 @@ def main() -> None:
     print(f"token table: {prior.shape[0]:,} tokens in {time.perf_counter() - t0:.1f}s")
     other = [wordnet_synsets(pos) for pos in ("verb", "adj", "adv")]
     corpus = [f"{r.lemma}: {r.gloss}" for df in other for r in df.itertuples()]
+    nouns = wordnet_synsets("noun")
+    nouns = nouns.assign(title=nouns["lemma"] + ": " + nouns["gloss"])
+    samples = {seed: nouns.sample(frac=1.0, random_state=seed).groupby("lexfile").head(120).reset_index(drop=True)
+               for seed in args.seeds}
+    if args.fit_nouns:
+        scored = set().union(*(set(x["item_id"]) for x in samples.values()))
+        # drawn as bench/taxonomy_wordnet.py draws its 50,000 (their vectors are cached), then cut
+        pool = nouns.sample(min(50_000, len(nouns)), random_state=11)
+        held_out = pool[~pool["item_id"].isin(scored)]["title"].head(args.fit_nouns).tolist()
+        corpus = held_out if args.nouns_only else corpus + held_out
     t0 = time.perf_counter()
     y, stats = embed_texts(corpus, model_embedder, EmbeddingCache(cache, model_embedder.name), progress=True)
-    print(f"distillation corpus: {len(corpus):,} verb/adjective/adverb glosses embedded in "
+    print(f"distillation corpus: {len(corpus):,} glosses ({args.fit_nouns:,} of them nouns) embedded in "
           f"{time.perf_counter() - t0:.1f}s ({stats.hits:,} from the cache)")
     t0 = time.perf_counter()
     weights = None if args.sif is None else sif_weights(tokenizer, corpus, prior.shape[0], args.sif)
@@ -149,8 +167,6 @@ def main() -> None:
           f"{time.perf_counter() - t0:.1f}s")
     static = StaticEncoder(tokenizer, table, f"static-wordnet-other-pos-lam{args.lam}-sif{args.sif}", weights)
 
-    nouns = wordnet_synsets("noun")
-    nouns = nouns.assign(title=nouns["lemma"] + ": " + nouns["gloss"])
     speed = nouns.sample(args.speed_items, random_state=123)["title"].tolist()
     rates = {}
     for name, enc in (("model", model_embedder), ("static", static), ("model", model_embedder), ("static", static)):
@@ -163,7 +179,7 @@ def main() -> None:
           f"static {static_rate:,.0f}: {static_rate / model_rate:.0f}x")
 
     for seed in args.seeds:
-        sample = nouns.sample(frac=1.0, random_state=seed).groupby("lexfile").head(120).reset_index(drop=True)
+        sample = samples[seed]
         texts, truth = sample["title"].tolist(), sample["lexfile"]
         scores = {}
         for name, enc in (("model", model_embedder), ("static", static)):
