@@ -23,6 +23,7 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "tests"))
 
+
 def main() -> None:
     from test_taxonomy_quality import wordnet_level_scores
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])

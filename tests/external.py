@@ -78,7 +78,9 @@ def _wordnet_dir() -> Path:
 @functools.lru_cache(maxsize=4)
 def wordnet_synsets(pos: str = "noun") -> pd.DataFrame:
     """Synsets of one part of speech (``noun``, ``verb``, ``adj`` or ``adv``): item_id (offset),
-    lemma, gloss, lexfile (lexicographer file number; nouns are 3..28)."""
+    lemma, gloss, lexfile (lexicographer file number; nouns are 3..28), parent (the first hypernym,
+    ``@`` or ``@i`` for an instance, of the same part of speech; None for a root or where the
+    database gives none), from the pointer list of each line (WordNet 3.0's format, wndb(5))."""
     rows = []
     with open(_wordnet_dir() / f"data.{pos}", encoding="utf-8") as f:
         for line in f:
@@ -88,8 +90,12 @@ def wordnet_synsets(pos: str = "noun") -> pd.DataFrame:
             parts = head.split()
             offset, lexfile, n_words = parts[0], int(parts[1]), int(parts[3], 16)
             words = [parts[4 + 2 * k].replace("_", " ") for k in range(n_words)]
-            rows.append((offset, ", ".join(words), gloss.strip(), lexfile))
-    return pd.DataFrame(rows, columns=["item_id", "lemma", "gloss", "lexfile"])
+            at = 4 + 2 * n_words
+            pointers = (parts[at + 1 + 4 * k: at + 4 + 4 * k] for k in range(int(parts[at])))
+            parent = next((target for symbol, target, p in pointers if symbol in ("@", "@i") and p == parts[2][0]),
+                          None)
+            rows.append((offset, ", ".join(words), gloss.strip(), lexfile, parent))
+    return pd.DataFrame(rows, columns=["item_id", "lemma", "gloss", "lexfile", "parent"])
 
 
 def wordnet_nouns() -> pd.DataFrame:
@@ -99,22 +105,9 @@ def wordnet_nouns() -> pd.DataFrame:
 
 @functools.lru_cache(maxsize=1)
 def wordnet_noun_parents() -> dict[str, str]:
-    """Each noun synset's first hypernym (``@``, or ``@i`` for an instance), by offset, from the
-    pointer list of data.noun (WordNet 3.0's database format, wndb(5)); the root has none."""
-    parents = {}
-    with open(_wordnet_dir() / "data.noun", encoding="utf-8") as f:
-        for line in f:
-            if line.startswith("  "):  # licence header
-                continue
-            parts = line.partition(" | ")[0].split()
-            n_words = int(parts[3], 16)
-            at = 4 + 2 * n_words
-            for k in range(int(parts[at])):
-                symbol, target, pos = parts[at + 1 + 4 * k: at + 4 + 4 * k]
-                if symbol in ("@", "@i") and pos == "n":
-                    parents[parts[0]] = target
-                    break
-    return parents
+    """Each noun synset's first hypernym, by offset (see wordnet_synsets); the root has none."""
+    nouns = wordnet_nouns().dropna(subset=["parent"])
+    return dict(zip(nouns["item_id"], nouns["parent"]))
 
 
 def wordnet_ancestor(offset: str, depth: int) -> str:
