@@ -89,6 +89,11 @@ class SentenceEmbedder:
         self._path = resolve_model_path(name, path)
         self._model = None
 
+    @property
+    def model_folder(self) -> Path:
+        """The local sentence-transformers folder the model is loaded from."""
+        return self._path
+
     def _load(self):
         if self._model is None:
             os.environ["HF_HUB_OFFLINE"] = "1"

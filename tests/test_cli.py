@@ -105,6 +105,7 @@ def test_demo_small_runs_every_stage(cli, tmp_path):
               "taxonomy/manifest.json", "labels/summary.json", "demo-summary.json", "job/state.json"):
         assert (tmp_path / "d" / p).exists(), p
     assert "labelled new_interest at level 1" in out
+    assert "fast encoder: skipped (the distilled encoder is fitted from the sentence model" in out
     job = json.loads((tmp_path / "d" / "demo-summary.json").read_text())["job"]
     assert [r["mode"] for r in job["runs"]] == ["full", "incremental"]
     assert job["labels_equal_batch_labels"] is True

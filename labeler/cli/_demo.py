@@ -28,6 +28,16 @@ def run(args) -> int:
           f"coarse AMI vs true hobbies {t['level0_ami_vs_true_hobby']:.3f} -> {t['dir']}")
     for w in t.get("warnings", []):
         print(f"  taxonomy warning: {w}")
+    f = s["fast_encoder"]
+    if "skipped" in f:
+        print(f"fast encoder: skipped ({f['skipped']})")
+    else:
+        print(f"fast encoder (taxonomy.encoder = distilled, fitted on {f['distilled_on']} items): "
+              f"{f['topics_per_level']['1']} fine topics in {f['seconds']:.0f}s (the model's build: "
+              f"{f['model_seconds']:.0f}s; the fit is a fixed cost of about half a minute, after which it "
+              f"embeds about 180x faster than the model); "
+              f"fine-topic AMI vs true themes {f['level1_ami_vs_true_theme']:.3f}, "
+              f"agreement with the model's fine topics (ARI) {f['level1_ari_vs_model_taxonomy']:.3f} -> {f['dir']}")
     for level, v in sorted(lab["levels"].items()):
         c = v["labels"]
         print(f"labels level {level}: in_profile {c['in_profile']}, new_interest {c['new_interest']}, "

@@ -21,7 +21,9 @@ import pandas as pd
 
 from .. import __version__
 from ..config import TaxonomyConfig
+from ..distilled import MEAN_ARRAY, TABLE_ARRAY, DistilledEncoder
 from ..embed import EmbeddingCache, SentenceEmbedder, embed_texts
+from ..errors import ConfigError
 from ..tables import item_text, normalize_items
 from .ids import format_id, id_number, match_topics, members_by_topic
 from .model import FORMAT, Taxonomy, hash_strings, items_empty_text, placement_rows
@@ -32,7 +34,8 @@ log = logging.getLogger(__name__)
 
 def embed_items(items: pd.DataFrame, cfg: dict, embedder, progress: bool = True):
     texts = item_text(items, cfg["text_columns"]).tolist()
-    cache = EmbeddingCache(cfg["embedding_cache"], embedder.name) if cfg.get("embedding_cache") else None
+    cacheable = cfg.get("embedding_cache") and getattr(embedder, "cacheable", True)
+    cache = EmbeddingCache(cfg["embedding_cache"], embedder.name) if cacheable else None
     return embed_texts(texts, embedder, cache, batch_size=max(cfg.get("batch_size", 64), 1) * 4,
                        progress=progress)
 
@@ -256,6 +259,23 @@ def shape_warnings(topics: pd.DataFrame, cfg: TaxonomyConfig) -> list[str]:
     return out
 
 
+def _distil(items: pd.DataFrame, usable: np.ndarray, teacher, cfg: TaxonomyConfig, progress: bool):
+    """The distilled encoder of ``taxonomy.encoder = "distilled"``, fitted on a seeded sample of the
+    items with text (all of them when there are at most ``distill_items``)."""
+    if not isinstance(teacher, SentenceEmbedder):
+        raise ConfigError(f"taxonomy.encoder = 'distilled' distils the sentence model, but the embedder "
+                          f"given is {teacher.name!r}. Use the model (drop --embedder hashing) or set "
+                          "taxonomy.encoder = 'model'.")
+    rng = np.random.default_rng([cfg.seed, 1])  # its own stream: the fit sample's draw stays as it was
+    pick = usable if len(usable) <= cfg.distill_items else np.sort(
+        rng.choice(usable, size=cfg.distill_items, replace=False))
+    texts = item_text(items.iloc[pick], cfg.text_columns).tolist()
+    log.info("taxonomy.encoder = distilled: embedding %d of %d items with %s to fit the token table",
+             len(texts), len(items), teacher.name)
+    cache = EmbeddingCache(cfg.embedding_cache, teacher.name) if cfg.embedding_cache else None
+    return DistilledEncoder.fit(texts, teacher, cache, ridge=cfg.distill_ridge, progress=progress)
+
+
 def build_taxonomy(items: pd.DataFrame, config: TaxonomyConfig | None = None, *, embedder=None,
                    previous: Taxonomy | None = None, progress: bool = True,
                    source: str = "items") -> Taxonomy:
@@ -274,10 +294,12 @@ def build_taxonomy(items: pd.DataFrame, config: TaxonomyConfig | None = None, *,
     items = items.sort_values("item_id", kind="stable").reset_index(drop=True)  # input order never matters
     embedder = embedder or SentenceEmbedder(cfg.model, cfg.model_path, cfg.batch_size)
     cfgd = cfg.model_dump(mode="json")
-    version = _input_version(items, cfg, embedder.name, previous)
-    vectors, stats = embed_items(items, cfgd, embedder, progress=progress)
     empty = items_empty_text(items, cfgd)
     usable = np.flatnonzero(~empty)
+    if cfg.encoder == "distilled":
+        embedder = _distil(items, usable, embedder, cfg, progress)
+    version = _input_version(items, cfg, embedder.name, previous)
+    vectors, stats = embed_items(items, cfgd, embedder, progress=progress)
     rng = np.random.default_rng(cfg.seed)
     fit_idx = usable if len(usable) <= cfg.fit_sample_cap else np.sort(
         rng.choice(usable, size=cfg.fit_sample_cap, replace=False))
@@ -301,6 +323,8 @@ def build_taxonomy(items: pd.DataFrame, config: TaxonomyConfig | None = None, *,
     centroid_topics = [ids[(1, c)] for c in range(n_fine)]
     parent = {ids[(1, c)]: ids[(0, int(coarse_of_fine[c]))] for c in range(n_fine)}
     arrays = {"centroids": centroids.astype(np.float32)}
+    if isinstance(embedder, DistilledEncoder):
+        arrays[TABLE_ARRAY], arrays[MEAN_ARRAY] = embedder.table, embedder.mean
     rows = placement_rows(item_ids, fine_idx, conf, empty, centroid_topics, parent, cfg.min_confidence)
     texts = pd.Series(item_text(items, cfg.text_columns).to_numpy(), index=item_ids)
     topic_rows = []
@@ -330,6 +354,10 @@ def build_taxonomy(items: pd.DataFrame, config: TaxonomyConfig | None = None, *,
     log.info("taxonomy %s: %d coarse / %d fine topics, %d of %d items unplaced (%.1f%%)", version[:12],
              manifest["topics_per_level"]["0"], manifest["topics_per_level"]["1"], n_unplaced,
              len(items), 100.0 * n_unplaced / max(len(items), 1))
-    out = Taxonomy(topics, rows, manifest, arrays, centroid_topics)
+    if isinstance(embedder, DistilledEncoder):
+        manifest["encoder"] = {"kind": "distilled", "teacher": embedder.teacher,
+                               "distilled_on": int(min(cfg.distill_items, len(usable)))}
+    out = Taxonomy(topics, rows, manifest, arrays, centroid_topics,
+                   tokenizer_json=embedder.tokenizer_json if isinstance(embedder, DistilledEncoder) else None)
     out.last_embed_stats = stats
     return out

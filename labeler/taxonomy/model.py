@@ -21,13 +21,14 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from .. import __version__
+from ..distilled import MEAN_ARRAY, TABLE_ARRAY, TOKENIZER_FILE
 from ..errors import ArtifactError, InputError
 from ..tables import normalize_items
 
 log = logging.getLogger(__name__)
 
 FORMAT = "labeler-taxonomy/1"
-ARRAYS = ("centroids",)
+ARRAYS = ("centroids", TABLE_ARRAY, MEAN_ARRAY)
 
 TOPICS_SCHEMA = pa.schema([("topic_id", pa.string()), ("level", pa.int32()), ("parent_id", pa.string()),
                            ("name", pa.string()), ("keywords", pa.list_(pa.string())),
@@ -59,7 +60,8 @@ class Taxonomy:
     """
 
     def __init__(self, topics: pd.DataFrame, item_topics: pd.DataFrame, manifest: dict[str, Any],
-                 arrays: dict[str, np.ndarray] | None = None, centroid_topics: list[str] | None = None):
+                 arrays: dict[str, np.ndarray] | None = None, centroid_topics: list[str] | None = None,
+                 tokenizer_json: str | None = None):
         self.topics = topics.sort_values(["level", "topic_id"], kind="stable").reset_index(drop=True)
         self.item_topics = item_topics.sort_values(["item_id", "level", "confidence", "topic_id"],
                                                    ascending=[True, True, False, True],
@@ -67,6 +69,7 @@ class Taxonomy:
         self.manifest = manifest
         self.arrays = arrays or {}
         self.centroid_topics = list(centroid_topics or [])
+        self.tokenizer_json = tokenizer_json  # the distilled encoder's tokenizer, if it has one
 
     # -- identity -------------------------------------------------------------------------------
     @property
@@ -207,6 +210,10 @@ class Taxonomy:
                                       "unplaced": int(len(items) - out["item_id"].nunique())}
             return out
         from .build import place, embed_items
+        if embedder is not None and embedder.name != self.manifest["model"]:
+            raise ArtifactError(f"taxonomy {self.version[:12]} was built with {self.manifest['model']!r}; items "
+                                f"embedded with {embedder.name!r} would be placed in another vector space. "
+                                "Leave the embedder out to use the taxonomy's own.")
         cfg = self.manifest["config"]
         items, _ = normalize_items(items, text_columns=tuple(cfg["text_columns"]))
         vectors, _ = embed_items(items, cfg, embedder=embedder or self.embedder(), progress=progress)
@@ -223,6 +230,10 @@ class Taxonomy:
         """The embedder this taxonomy was built with, resolved locally."""
         from ..embed import HashingEmbedder, SentenceEmbedder
         name = self.manifest["model"]
+        if self.manifest.get("encoder", {}).get("kind") == "distilled":
+            from ..distilled import DistilledEncoder
+            return DistilledEncoder(self.tokenizer_json, self.arrays[TABLE_ARRAY],
+                                    self.manifest["encoder"]["teacher"], self.arrays[MEAN_ARRAY])
         if name.startswith("hashing-"):
             return HashingEmbedder(int(name.split("-")[1]))
         cfg = self.manifest["config"]
@@ -245,6 +256,8 @@ class Taxonomy:
                 np.save(tmp / f"{name}.npy", np.ascontiguousarray(self.arrays[name]), allow_pickle=False)
         if self.centroid_topics:
             (tmp / "centroid_topics.json").write_text(json.dumps(self.centroid_topics))
+        if self.tokenizer_json is not None:
+            (tmp / TOKENIZER_FILE).write_text(self.tokenizer_json, encoding="utf-8")
         for f in sorted(tmp.iterdir()):
             files[f.name] = sha256_file(f)
         manifest = dict(self.manifest, files=files)
@@ -287,7 +300,9 @@ class Taxonomy:
                   if (root / f"{n}.npy").exists()}
         ct = root / "centroid_topics.json"
         centroid_topics = json.loads(ct.read_text()) if ct.exists() else []
-        return cls(topics, item_topics, manifest, arrays, centroid_topics)
+        tj = root / TOKENIZER_FILE
+        tokenizer_json = tj.read_text(encoding="utf-8") if tj.exists() else None
+        return cls(topics, item_topics, manifest, arrays, centroid_topics, tokenizer_json)
 
 
 def _write_parquet(df: pd.DataFrame, schema: pa.Schema, path: Path) -> None:
