@@ -88,7 +88,8 @@ def refine(m, y: np.ndarray, prior: np.ndarray, ridge: float, iterations: int = 
 class DistilledEncoder:
     """Step 3: texts -> unit vectors from a token table, as an embedder the taxonomy build accepts.
 
-    ``cacheable`` is False: encoding is faster than reading the content-hash cache.
+    ``cacheable`` is False: its vectors depend on the fitted table, not on the text alone, and at
+    about 20,000 items/s on 2 cores a million items take under a minute.
     """
 
     cacheable = False

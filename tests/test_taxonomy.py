@@ -291,6 +291,22 @@ def test_coarse_groups_follow_direction_from_the_catalog_mean_not_closeness_to_i
     assert adjusted_rand_score(truth, _coarse(centres, cfg)) < 0.5
 
 
+@pytest.mark.parametrize("groups", [2, 3, 5, 8])
+def test_coarse_count_is_where_the_groups_of_centres_stand_apart(groups):
+    """Without coarse_topics, the Ward tree of the fine centres is cut where the centres' silhouette
+    peaks: planted groups of 3-6 centres around separate directions are recovered with their count."""
+    from sklearn.metrics import adjusted_rand_score
+    from labeler.taxonomy.build import _coarse
+    rng = np.random.default_rng(groups)
+    dim = 32
+    sizes = rng.integers(3, 7, size=groups)
+    truth = np.repeat(np.arange(groups), sizes)
+    centres = np.eye(dim)[truth] + 0.25 * rng.standard_normal((len(truth), dim)) / np.sqrt(dim)
+    found = _coarse(centres, TaxonomyConfig(), mean=centres.mean(axis=0))
+    assert len(set(found)) == groups
+    assert adjusted_rand_score(truth, found) == 1.0
+
+
 def test_empty_text_items_are_unplaced_and_counted():
     """Items with no text are never placed; the manifest counts them."""
     from labeler.embed import HashingEmbedder
