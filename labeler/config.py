@@ -89,7 +89,7 @@ class TaxonomyConfig(_Strict):
     encoder: Literal["model", "distilled"] = Field(
         "model", description="model: the sentence model embeds every item (accurate, about 150-300 items/s on "
         "2 cores); distilled: a token table distilled from the model on distill_items of the catalog embeds "
-        "them all (about 180x faster, AMI within 0.03 of the model's on WordNet nouns)")
+        "them all (about 140x faster, AMI within 0.03 of the model's on WordNet nouns)")
     distill_items: int = Field(20_000, ge=100, description="encoder = distilled: catalog items embedded "
                                "with the model to fit the table on (a seeded random sample)")
     distill_ridge: float = Field(0.03, gt=0.0, description="encoder = distilled: pull of the fitted "

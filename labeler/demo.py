@@ -233,7 +233,9 @@ def run_demo(out_dir, seed: int = 7, embedder=None, progress: bool = True, small
     hit = ev.merge(fine[["event_id", "label"]], on="event_id", how="left")
     recall = float((hit["label"] == "new_interest").mean()) if len(hit) else 0.0
     from .store import open_store, publish_store
-    snapshot = publish_store(out / "store", run, tax, cfg)
+    import hashlib
+    key = hashlib.sha256(f"{run.taxonomy_version}\x00{run.labels_version}".encode()).hexdigest()
+    snapshot = publish_store(out / "store", run, tax, cfg, content_key=key)  # the same demo, the same name
     store = open_store(out / "store")
     busiest = scenario.interactions["user_id"].value_counts().index[0]
     fp = store.footprint(busiest, level=1)

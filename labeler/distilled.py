@@ -17,8 +17,8 @@ taxonomy is built from and new items are placed with. How it is made:
    new items needs neither torch nor the model folder: the table (float16), the mean and the
    tokenizer are saved in the taxonomy folder.
 
-Measured on WordNet 3.0 nouns (README, ``bench/encoder_static.py``): about 180x the model's
-items/s on 2 cores, AMI within 0.03 of the model's on three seeds.
+Measured on WordNet 3.0 nouns (README, ``bench/encoder_static.py``): about 140x the model's
+items/s on 2 cores, AMI within 0.03 of the model's on six seeds.
 """
 from __future__ import annotations
 

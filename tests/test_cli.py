@@ -1,6 +1,7 @@
 """The command line: help for every verb, exit codes, and the README's demo command."""
 from __future__ import annotations
 
+import hashlib
 import json
 
 import pytest
@@ -106,6 +107,9 @@ def test_demo_small_runs_every_stage(cli, tmp_path):
         assert (tmp_path / "d" / p).exists(), p
     assert "labelled new_interest at level 1" in out
     assert "fast encoder: skipped (the distilled encoder is fitted from the sentence model" in out
+    labels = json.loads((tmp_path / "d" / "labels" / "summary.json").read_text())
+    key = hashlib.sha256(f"{labels['taxonomy_version']}\x00{labels['labels_version']}".encode()).hexdigest()
+    assert f"store snapshot snap-000001-{key[:8]} " in out  # named by what it holds: the same demo, the same name
     job = json.loads((tmp_path / "d" / "demo-summary.json").read_text())["job"]
     assert [r["mode"] for r in job["runs"]] == ["full", "incremental"]
     assert job["labels_equal_batch_labels"] is True

@@ -35,7 +35,7 @@ def run(args) -> int:
         print(f"fast encoder (taxonomy.encoder = distilled, fitted on {f['distilled_on']} items): "
               f"{f['topics_per_level']['1']} fine topics in {f['seconds']:.0f}s (the model's build: "
               f"{f['model_seconds']:.0f}s; the fit is a fixed cost of about half a minute, after which it "
-              f"embeds about 180x faster than the model); "
+              f"embeds about 140x faster than the model); "
               f"fine-topic AMI vs true themes {f['level1_ami_vs_true_theme']:.3f}, "
               f"agreement with the model's fine topics (ARI) {f['level1_ari_vs_model_taxonomy']:.3f} -> {f['dir']}")
     for level, v in sorted(lab["levels"].items()):
