@@ -53,7 +53,11 @@ def _print_taxonomy(tax: Taxonomy, out: str) -> None:
     print(f"  items: {n}, unplaced: {m.get('n_unplaced', 0)} ({100.0 * m.get('n_unplaced', 0) / max(n, 1):.1f}%)")
     for w in m.get("warnings", []):
         print(f"  warning: {w}")
-    if "embedding_cache" in m:
+    if "encoder" in m:
+        e = m["encoder"]
+        print(f"  encoder: {e['kind']}, a token table fitted on {e['distilled_on']} items embedded with {e['teacher']}; "
+              f"every item encoded with it (not cached)")
+    elif "embedding_cache" in m:
         c = m["embedding_cache"]
         print(f"  embeddings: {c['hits']} from cache, {c['misses']} computed")
 
