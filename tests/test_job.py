@@ -17,7 +17,7 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 import pytest
 
-from labeler import JobConfig, LabelConfig, Taxonomy, label_interactions
+from labeler import JobConfig, LabelConfig, Taxonomy, TaxonomyConfig, label_interactions
 from labeler.errors import EngineError, LockedError, RejectedError
 from labeler.job import FAILPOINTS, current_outputs, load_state, run_job
 from labeler.job.failpoints import WRITE_POINTS
@@ -619,3 +619,31 @@ def test_max_user_events_makes_every_run_full_and_says_why(tmp_path, scenario):
     assert m["mode"] == "full" and "max_user_events" in m["why"]
     run_job(make_config(root, work="fresh", labels={"max_user_events": 60}))
     assert_same_outputs(root / "work", root / "fresh")
+
+
+@pytest.mark.model
+def test_a_job_on_a_distilled_taxonomy_places_new_items_with_its_table(tmp_path, scenario):
+    """taxonomy.encoder = distilled in the job (real packaged model): the first run distils and builds
+    the taxonomy from text; a later day's new item (another item's text under a new id) is placed by
+    the taxonomy's own table in that item's fine topic, and the incremental outputs equal a full run's."""
+    from external import cache_dir
+    root, dates = setup_root(tmp_path, scenario, 10)
+    items, ev = scenario
+    cfg = make_config(root, taxonomy_from="text").model_copy(update={"taxonomy": TaxonomyConfig(
+        encoder="distilled", distill_items=200, embedding_cache=str(cache_dir() / "embeddings"))})
+    run_job(cfg)
+    twin = items.iloc[[3]].assign(item_id="twin-item")
+    pd.concat([items, twin], ignore_index=True).to_parquet(root / "items.parquet", index=False)
+    write_days(ev, root / "interactions", [dates[10]])
+    g = root / "interactions" / f"date={dates[10]}" / "part-0.parquet"
+    part = pd.read_parquet(g)
+    pd.concat([part, part.iloc[[0]].assign(item_id="twin-item", event_id="twin")], ignore_index=True).to_parquet(g, index=False)
+    m = run_job(cfg).manifest
+    assert m["items"]["new"] == 1 and m["items"]["placed"] == 1
+    labels = pq.read_table(current_outputs(root / "work") / "labels").to_pandas()
+    fine = labels[labels["level"] == 1].set_index("event_id")["topic_id"]
+    original = labels[(labels["level"] == 1) & (labels["item_id"] == items["item_id"].iloc[3])]["topic_id"]
+    assert len(original) and fine["twin"] == original.iloc[0]
+    incremental = committed(root / "work")
+    run_job(cfg, full=True)
+    assert committed(root / "work") == incremental
