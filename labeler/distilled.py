@@ -49,18 +49,23 @@ def token_table(model) -> np.ndarray:
     return 0.3 * out / (np.linalg.norm(out, axis=1, keepdims=True) + 1e-12)
 
 
-def mean_matrix(tokenizer, texts: Sequence[str], vocab: int, weights: np.ndarray | None = None):
-    """Sparse rows, one per text, each averaging the text's tokens (no [CLS]/[SEP]), weighted by
-    ``weights`` (one per vocabulary token; None: all equal)."""
+def mean_matrix(tokenizer, texts: Sequence[str], vocab: int):
+    """Sparse rows, one per text, each the mean of the text's one-hot tokens (no [CLS]/[SEP])."""
     import scipy.sparse as sp
     enc = tokenizer.encode_batch(list(texts), add_special_tokens=False)
     lens = np.array([len(e.ids) for e in enc], dtype=np.int64)
     ind = np.concatenate([e.ids for e in enc]).astype(np.int64) if lens.sum() else np.zeros(0, np.int64)
-    w = np.ones(len(ind), np.float64) if weights is None else weights[ind].astype(np.float64)
-    starts = np.concatenate([[0], np.cumsum(lens)])
-    totals = np.bincount(np.repeat(np.arange(len(lens)), lens), weights=w, minlength=len(lens))
-    vals = (w / np.repeat(np.where(lens > 0, totals, 1.0), lens)).astype(np.float32)
-    return sp.csr_matrix((vals, ind, starts), shape=(len(lens), vocab))
+    vals = np.repeat(1.0 / np.maximum(lens, 1), lens).astype(np.float32)
+    return sp.csr_matrix((vals, ind, np.concatenate([[0], np.cumsum(lens)])), shape=(len(lens), vocab))
+
+
+def load_tokenizer(tokenizer_json: str):
+    """The model's fast tokenizer from its JSON, with no padding or truncation."""
+    from tokenizers import Tokenizer
+    tokenizer = Tokenizer.from_str(tokenizer_json)
+    tokenizer.no_padding()
+    tokenizer.no_truncation()
+    return tokenizer
 
 
 def refine(m, y: np.ndarray, prior: np.ndarray, ridge: float, iterations: int = 100) -> np.ndarray:
@@ -95,14 +100,11 @@ class DistilledEncoder:
     cacheable = False
 
     def __init__(self, tokenizer_json: str, table: np.ndarray, teacher: str, mean: np.ndarray | None = None):
-        from tokenizers import Tokenizer
         self.tokenizer_json, self.teacher = tokenizer_json, teacher
         self.table = np.asarray(table, dtype=np.float16)
         self._rows = self.table.astype(np.float32)
         self.mean = np.zeros(self.table.shape[1], np.float32) if mean is None else np.asarray(mean, np.float32)
-        self.tokenizer = Tokenizer.from_str(tokenizer_json)
-        self.tokenizer.no_padding()
-        self.tokenizer.no_truncation()
+        self.tokenizer = load_tokenizer(tokenizer_json)
         self.name = f"distilled-{teacher}"
 
     def _averaged(self, texts: Sequence[str]) -> np.ndarray:
@@ -124,13 +126,11 @@ class DistilledEncoder:
         import time
         from .embed import embed_texts
         t0 = time.perf_counter()
-        model = teacher._load()
         tokenizer_json = (teacher.model_folder / "tokenizer.json").read_text(encoding="utf-8")
-        prior = token_table(model)
+        prior = token_table(teacher.model)
         y, _ = embed_texts(list(texts), teacher, cache, progress=progress)
-        fitted = cls(tokenizer_json, prior, teacher.name)
-        fitted = cls(tokenizer_json, refine(mean_matrix(fitted.tokenizer, texts, prior.shape[0]), y, prior, ridge),
-                     teacher.name)
+        m = mean_matrix(load_tokenizer(tokenizer_json), texts, prior.shape[0])
+        fitted = cls(tokenizer_json, refine(m, y, prior, ridge), teacher.name)
         fitted.mean = fitted._averaged(texts).mean(axis=0).astype(np.float32)
         log.info("distilled a %d x %d token table from %s on %d texts in %.1fs", *fitted.table.shape,
                  teacher.name, len(texts), time.perf_counter() - t0)

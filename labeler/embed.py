@@ -94,6 +94,11 @@ class SentenceEmbedder:
         """The local sentence-transformers folder the model is loaded from."""
         return self._path
 
+    @property
+    def model(self):
+        """The loaded SentenceTransformer (loaded on first use)."""
+        return self._load()
+
     def _load(self):
         if self._model is None:
             os.environ["HF_HUB_OFFLINE"] = "1"
