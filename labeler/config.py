@@ -31,8 +31,12 @@ class _Strict(BaseModel):
 
     def meaning_json(self) -> str:
         """Key-sorted JSON of the fields that change results (no paths): the input of version hashes."""
-        return json.dumps(self.model_dump(mode="json", exclude=set(self._LOCATIONS)), sort_keys=True,
+        return json.dumps(self.model_dump(mode="json", exclude=self._without_meaning()), sort_keys=True,
                           separators=(",", ":"))
+
+    def _without_meaning(self) -> set[str]:
+        """The fields that cannot change results as set: the locations, in every settings model."""
+        return set(self._LOCATIONS)
 
 
 class InputConfig(_Strict):
@@ -95,16 +99,11 @@ class TaxonomyConfig(_Strict):
     distill_ridge: float = Field(0.03, gt=0.0, description="encoder = distilled: pull of the fitted "
                                  "table toward the model's own token vectors")
 
-    def meaning_json(self) -> str:
-        """As for every setting, but the distilled encoder's fields count only when it is chosen, so
-        taxonomies built with the model keep the versions they had before the option existed."""
-        if self.encoder == "distilled":
-            return super().meaning_json()
-        return json.dumps(self.model_dump(mode="json", exclude=set(self._LOCATIONS) | _DISTILL_FIELDS),
-                          sort_keys=True, separators=(",", ":"))
-
-
-_DISTILL_FIELDS = {"encoder", "distill_items", "distill_ridge"}
+    def _without_meaning(self) -> set[str]:
+        """The distilled encoder's fields count only when it is chosen, so taxonomies built with the
+        model keep the versions they had before the option existed."""
+        unused = set() if self.encoder == "distilled" else {"encoder", "distill_items", "distill_ridge"}
+        return super()._without_meaning() | unused
 
 
 class LabelConfig(_Strict):
