@@ -107,12 +107,13 @@ class DistilledEncoder:
         self.tokenizer = load_tokenizer(tokenizer_json)
         self.name = f"distilled-{teacher}"
 
-    def _averaged(self, texts: Sequence[str]) -> np.ndarray:
-        x = mean_matrix(self.tokenizer, texts, self._rows.shape[0]) @ self._rows
+    def _averaged(self, m) -> np.ndarray:
+        """Unit-length means of token rows, for the texts of the mean matrix ``m``."""
+        x = m @ self._rows
         return x / (np.linalg.norm(x, axis=1, keepdims=True) + 1e-12)
 
     def encode(self, texts: Sequence[str]) -> np.ndarray:
-        x = self._averaged(texts) - self.mean
+        x = self._averaged(mean_matrix(self.tokenizer, texts, self._rows.shape[0])) - self.mean
         return (x / (np.linalg.norm(x, axis=1, keepdims=True) + 1e-12)).astype(np.float32)
 
     @classmethod
@@ -131,7 +132,7 @@ class DistilledEncoder:
         y, _ = embed_texts(list(texts), teacher, cache, progress=progress)
         m = mean_matrix(load_tokenizer(tokenizer_json), texts, prior.shape[0])
         fitted = cls(tokenizer_json, refine(m, y, prior, ridge), teacher.name)
-        fitted.mean = fitted._averaged(texts).mean(axis=0).astype(np.float32)
+        fitted.mean = fitted._averaged(m).mean(axis=0).astype(np.float32)  # the fit texts, tokenised once
         log.info("distilled a %d x %d token table from %s on %d texts in %.1fs", *fitted.table.shape,
                  teacher.name, len(texts), time.perf_counter() - t0)
         return fitted
