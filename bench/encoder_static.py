@@ -45,7 +45,7 @@ def rates(encoders: dict, texts: list[str]) -> dict[str, float]:
 def main() -> None:
     os.environ["HF_HUB_OFFLINE"] = "1"
     import tempfile
-    from external import cache_dir, wordnet_synsets
+    from external import cache_dir, wordnet_noun_glosses_outside, wordnet_synsets
     from sklearn.cluster import KMeans
     from sklearn.metrics import adjusted_mutual_info_score
     from labeler import TaxonomyConfig, build_taxonomy
@@ -67,8 +67,7 @@ def main() -> None:
     samples = {seed: nouns.sample(frac=1.0, random_state=seed).groupby("lexfile").head(120).reset_index(drop=True)
                for seed in args.seeds}
     scored = set().union(*(set(x["item_id"]) for x in samples.values()))
-    pool = nouns.sample(min(50_000, len(nouns)), random_state=11)  # as bench/taxonomy_wordnet.py draws (cached)
-    corpus = pool[~pool["item_id"].isin(scored)]["title"].head(args.fit_nouns).tolist()
+    corpus = wordnet_noun_glosses_outside(scored, args.fit_nouns)
     if args.general:
         corpus += [f"{r.lemma}: {r.gloss}" for pos in ("verb", "adj", "adv") for r in wordnet_synsets(pos).itertuples()]
     t0 = time.perf_counter()

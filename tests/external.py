@@ -103,6 +103,16 @@ def wordnet_nouns() -> pd.DataFrame:
     return wordnet_synsets("noun")
 
 
+def wordnet_noun_glosses_outside(scored: set[str], n: int) -> list[str]:
+    """``n`` noun texts ("lemma: gloss") of synsets not in ``scored``, taken in the order of the
+    50,000-synset draw bench/taxonomy_wordnet.py embeds (random_state 11), whose vectors the
+    embedding cache usually holds: the fit texts of the distilled encoder's checks."""
+    nouns = wordnet_nouns()
+    pool = nouns.sample(min(50_000, len(nouns)), random_state=11)
+    pool = pool[~pool["item_id"].isin(scored)].head(n)
+    return (pool["lemma"] + ": " + pool["gloss"]).tolist()
+
+
 @functools.lru_cache(maxsize=1)
 def wordnet_noun_parents() -> dict[str, str]:
     """Each noun synset's first hypernym, by offset (see wordnet_synsets); the root has none."""

@@ -226,14 +226,11 @@ def wordnet_distilled(seeds: tuple[int, ...] = (3, 4, 5), n_fit: int = 20_000):
     """The distilled encoder fitted on ``n_fit`` WordNet noun glosses that none of the scored samples
     of ``seeds`` holds: a catalog distilling on a part of itself embedded with the model and encoding
     the rest (bench/encoder_static.py measures the same way)."""
-    from external import cache_dir, wordnet_nouns
+    from external import cache_dir, wordnet_noun_glosses_outside
     from labeler.distilled import DistilledEncoder
     from labeler.embed import EmbeddingCache, SentenceEmbedder
     scored = set().union(*(set(wordnet_build(s)[0]["item_id"]) for s in seeds))
-    nouns = wordnet_nouns()
-    pool = nouns.sample(min(50_000, len(nouns)), random_state=11)
-    held = pool[~pool["item_id"].isin(scored)]
-    texts = (held["lemma"] + ": " + held["gloss"]).head(n_fit).tolist()
+    texts = wordnet_noun_glosses_outside(scored, n_fit)
     teacher = SentenceEmbedder()
     return DistilledEncoder.fit(texts, teacher, EmbeddingCache(cache_dir() / "embeddings", teacher.name),
                                 progress=False)
