@@ -153,6 +153,12 @@ class EngineConfig(_Strict):
     """Where the relational label expressions run."""
 
     engine: Literal["duckdb", "spark"] = "duckdb"
+    label_plan: Literal["windows", "scan"] = Field(
+        "scan", description="DuckDB: 'scan' computes the label counts by one sorted pass when the "
+        "settings allow (no memory window, no max_user_events), 'windows' always by the relational "
+        "windows; both give the same labels")
+    scan_min_rows: int = Field(1_000_000, ge=0, description="the 'scan' plan is taken from this many "
+                               "interactions on (below, loading the compiled pass costs more than it saves)")
     memory_limit: str = "4GB"
     temp_dir: str | None = None
     threads: int | None = Field(None, ge=1)

@@ -136,6 +136,15 @@ class DuckDBEngine(Engine):
         self.con.con.register(name, arrow)  # the connection holds the table while the view exists
         return self.con.table(name)
 
+    def sorted_arrow(self, expr, keys) -> pa.Table:
+        """The rows of ``expr`` ordered by ``keys`` (ascending, nulls last), as one Arrow table."""
+        sql = self.con.compile(expr.order_by([ibis.asc(expr[k], nulls_first=False) for k in keys]))
+        return self.con.con.sql(sql).to_arrow_table()
+
+    def drop_table(self, table) -> None:
+        """Release a table registered by ``table`` (its Arrow data is no longer held)."""
+        self.con.con.unregister(table.get_name())
+
     def to_batches(self, expr, rows: int = 65_536):
         """Stream the result as Arrow record batches (ibis 12's streaming predates duckdb 2.0)."""
         sql = self.con.compile(expr)

@@ -30,6 +30,8 @@ from .intake import _COLUMNS as _INPUT_COLUMNS
 from .labels import carried_rows, continue_history, continued_history, each_interaction_once, footprint_rows, \
     heavy_users, known_transitions, label_rows, prepare, topic_rows, user_history, with_carried, \
     with_known_topics, with_support
+from .scan import applies as scan_applies
+from .scan import scanned_rows
 from .tables import FOOTPRINTS_COLUMNS, LABEL_VALUES, LABELS_COLUMNS, Intake
 
 log = logging.getLogger(__name__)
@@ -132,7 +134,7 @@ class LabelRun:
     config: LabelConfig
     taxonomy_version: str
     labels_version: str
-    labels: Any            # Ibis table: labels with ts_us, unsorted
+    _labels: Any           # Ibis table: labels with ts_us, unsorted (None: by the scan plan, on first use)
     _base: Any             # Ibis table: one row per (interaction, level, item topic); see ``base``
     _transitions: Any      # Ibis table: when topics become known / forgotten; see ``transitions``
     ev: Any                # Ibis table: the validated input
@@ -148,13 +150,47 @@ class LabelRun:
     written: dict | None = None  # after a write in pieces: the footprints file and history it wrote
     _with_all_carried: Any = None  # with carried state: the topic rows plus stand-ins of every carried topic
     _new_rows: Any = None  # with carried state: the new events' topic rows, cached
+    scan: bool = False     # labels by the sort-and-scan plan (labeler.scan)
+    _raw_rows: Any = None  # for the scan plan: the topic rows before the duplicate collapse
+    _scanned: Any = None   # for the scan plan: the scanned rows (Arrow held by the engine) under the labels
+
+    @property
+    def labels(self):
+        """Ibis table: labels with ts_us, unsorted."""
+        if self._labels is None:
+            self._labels = self._scan_labels()
+        return self._labels
+
+    @labels.setter
+    def labels(self, value) -> None:
+        self._labels = value
+
+    def _scan_labels(self):
+        """The labels by one sorted pass (:mod:`labeler.scan`): over the topic rows as they came
+        when nothing has read them yet and they hold no duplicate interaction, else over the
+        collapsed (shared) ones."""
+        rows = None
+        if not self.base_shared and self._raw_rows is not None:
+            rows = scanned_rows(self.engine, self._raw_rows, self.config)
+            if rows is None:
+                log.info("the interactions hold duplicate events: collapsing them before labelling")
+        if rows is None:
+            rows = scanned_rows(self.engine, self.base, self.config)
+        if rows is None:  # cannot happen after the collapse; the windows are the rules' reference
+            return _label_expr(self.base, self.transitions, self.config, self.single_topic,
+                               _topic_bound(self.taxonomy), self.carried_until_us)
+        self._scanned = rows
+        labels = label_rows(rows, self.config, self.single_topic)
+        until = self.carried_until_us
+        return labels if until is None else labels.filter(labels.ts_us > until)
 
     def share_base(self) -> "LabelRun":
         """Compute the topic rows once into an engine table, for results that read them again."""
         if not self.base_shared:
             self._base = self._base.cache()
             self._transitions = known_transitions(self._base, self.config)
-            self.labels = _label_expr(self._base, self._transitions, self.config, self.single_topic,
+            if not self.scan:  # the scan plan's labels, if computed already, stay valid
+                self.labels = _label_expr(self._base, self._transitions, self.config, self.single_topic,
                                       _topic_bound(self.taxonomy), self.carried_until_us)
             self.base_shared = True
         return self
@@ -182,14 +218,20 @@ class LabelRun:
         ts = pd.Timestamp(self.as_of)
         return int((ts.tz_convert("UTC") if ts.tz else ts.tz_localize("UTC")).value // 1000)
 
+    @property
+    def _footprints_as_of_us(self) -> int:
+        """``as_of_us``, or, when no interaction is left to label (every event type filtered out),
+        a time before any: no footprint rows, rather than a failure."""
+        return self.as_of_us if self.as_of_us is not None else -(2 ** 62)
+
     @functools.cached_property
     def footprints(self):
         """Ibis table: footprints with known_since_us, as of ``as_of_us``."""
         if self.carried is None:
-            return footprint_rows(self.base, self.transitions, self.config, self.as_of_us)
+            return footprint_rows(self.base, self.transitions, self.config, self._footprints_as_of_us)
         # every carried topic's row, so from every topic's stand-ins (``base`` may hold only the touched
         # topics'; the transitions after the watermark are the same in both)
-        return footprint_rows(self._with_all_carried, self.transitions, self.config, self.as_of_us,
+        return footprint_rows(self._with_all_carried, self.transitions, self.config, self._footprints_as_of_us,
                               history=self.history, carried=self.carried[0], carried_until_us=self.carried_until_us)
 
     @functools.cached_property
@@ -198,7 +240,7 @@ class LabelRun:
         others are the carried rows, aged, with the new history_len). Without: ``footprints``."""
         if self.carried is None:
             return self.footprints
-        return footprint_rows(self.base, self.transitions, self.config, self.as_of_us, history=self.history,
+        return footprint_rows(self.base, self.transitions, self.config, self._footprints_as_of_us, history=self.history,
                               carried=self.carried[0], carried_until_us=self.carried_until_us, touched_only=True)
 
     @property
@@ -217,14 +259,21 @@ class LabelRun:
         if not self.materialized:
             self.share_base()  # whoever reads labels several times reads footprints too
             self.labels = self.labels.cache()
+            self._drop_scanned()  # the cached labels hold what they need of it
             self.materialized = True
         return self
 
+    def _drop_scanned(self) -> None:
+        if self._scanned is not None:
+            self.engine.drop_table(self._scanned)
+            self._scanned = None
+
     def release(self) -> None:
         """Drop the engine tables ``materialize`` cached (the run is not read again after this)."""
-        for t in (self.labels, self._base, self._new_rows):
+        for t in (self._labels, self._base, self._new_rows):
             if hasattr(t, "release"):
                 t.release()
+        self._drop_scanned()
 
     # -- results as Arrow / pandas --------------------------------------------------------------
     def _labels_sorted(self):
@@ -591,12 +640,16 @@ def plan_labels(interactions, taxonomy, config: LabelConfig | None = None, *,
         whole = base.union(carried_rows(state[0], base, cfg), distinct=False)
         base = with_carried(base, state[0], cfg)
     transitions = known_transitions(base, cfg)
-    labels = _label_expr(base, transitions, cfg, single_topic, _topic_bound(taxonomy), until)
+    scan = scan_applies(eng, cfg, intake.rows_in)
+    labels = None if scan else _label_expr(base, transitions, cfg, single_topic, _topic_bound(taxonomy), until)
+    raw = None
+    if scan and state is None:  # the scan checks for duplicates itself: try without the collapse first
+        raw = topic_rows(prepare(ev, cfg, collapse=False), it, levels, has_valid)
     version = hashlib.sha256("\x00".join([taxonomy.version, cfg.canonical_json(), intake.content_hash,
                                           __version__]).encode()).hexdigest()
     return LabelRun(eng, cfg, taxonomy.version, version, labels, base, transitions, ev, intake, as_of, heavy=heavy,
                     single_topic=single_topic, carried=state, carried_until_us=until, taxonomy=taxonomy,
-                    _with_all_carried=whole, _new_rows=new_rows)
+                    _with_all_carried=whole, _new_rows=new_rows, scan=scan, _raw_rows=raw)
 
 
 def _topic_bound(taxonomy) -> int:

@@ -44,17 +44,20 @@ def _i64(value) -> ir.Value:
     return ibis.literal(value, type="int64")
 
 
-def prepare(ev: ir.Table, cfg: LabelConfig) -> ir.Table:
+def prepare(ev: ir.Table, cfg: LabelConfig, collapse: bool = True) -> ir.Table:
     """Filter event types, collapse duplicate events, and add ``history_len`` = 0 (the user's
     interactions before these rows: ``continue_history`` sets the carried count; ``with_known_topics``
     adds the rows' own).
 
     ``ev`` has user_id, item_id, ts, ts_us, engagement, event_id, event_type. Duplicates (same
     user, item, ts and event_id) become one row with the highest engagement and the smallest
-    event_type and arm.
+    event_type and arm. ``collapse=False`` leaves them (the same columns): for a plan that proves
+    there are none (:mod:`labeler.scan`), on which the collapse changes nothing.
     """
     if cfg.event_types is not None:
         ev = ev.filter(ev.event_type.isin(list(cfg.event_types)))
+    if not collapse:
+        return ev.select(*INTERACTION_KEY, "ts", "engagement", "event_type", "arm", history_len=_i64(0))
     ev = ev.group_by(list(INTERACTION_KEY)).aggregate(
         ts=ev.ts.min(), engagement=ev.engagement.max(), event_type=ev.event_type.min(), arm=ev.arm.min())
     return ev.mutate(history_len=_i64(0))

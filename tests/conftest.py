@@ -43,7 +43,9 @@ def _have_spark() -> bool:
     return importlib.util.find_spec("pyspark") is not None and shutil.which("java") is not None
 
 
-ENGINES = ["duckdb", pytest.param("spark", marks=[pytest.mark.spark, pytest.mark.skipif(
+# "duckdb" labels by the sorted pass where the settings allow (labeler/scan.py), "duckdb-windows" by
+# the relational windows always: every engine-parametrized test holds both plans to the same results
+ENGINES = ["duckdb", "duckdb-windows", pytest.param("spark", marks=[pytest.mark.spark, pytest.mark.skipif(
     not _have_spark(), reason="PySpark or Java missing (install the 'spark' extra)")])]
 
 
@@ -64,10 +66,15 @@ def engine_name(request):
 @pytest.fixture
 def on_engine(engine_name, request, monkeypatch):
     """Make label_interactions / build_footprints / plan_labels run on the parametrized engine."""
+    import labeler.labelling as labelling
     if engine_name == "spark":
         eng = request.getfixturevalue("spark_engine")
-        import labeler.labelling as labelling
         monkeypatch.setattr(labelling, "make_engine", lambda *a, **k: eng)
+    if engine_name.startswith("duckdb"):  # the sorted pass for small logs too, or the windows
+        from labeler.config import EngineConfig
+        make = labelling.make_engine
+        conf = EngineConfig(label_plan="windows") if engine_name == "duckdb-windows" else EngineConfig(scan_min_rows=0)
+        monkeypatch.setattr(labelling, "make_engine", lambda *a, **k: make(conf))
     return engine_name
 
 

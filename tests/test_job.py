@@ -42,7 +42,8 @@ def write_days(ev: pd.DataFrame, folder: Path, dates) -> None:
 
 def make_config(root: Path, work: str = "work", **run) -> JobConfig:
     labels = run.pop("labels", {})
-    engine = {"memory_limit": "1GB", "threads": 2, **run.pop("engine", {})}
+    # scan_min_rows = 0: the job's tests run the sorted label pass (labeler/scan.py) on their small logs
+    engine = {"memory_limit": "1GB", "threads": 2, "scan_min_rows": 0, **run.pop("engine", {})}
     return JobConfig(items=str(root / "items.parquet"), interactions=str(root / "interactions"),
                      work_dir=str(root / work), labels=labels, engine=engine,
                      run={"taxonomy_from": "categories", **run})
@@ -468,7 +469,8 @@ def test_a_second_run_is_refused_while_the_lock_is_held(tmp_path, scenario, cli)
 def _toml(root: Path, work: str = "work") -> Path:
     p = root / f"{work}.toml"
     p.write_text(f'items = "items.parquet"\ninteractions = "interactions"\nwork_dir = "{work}"\n'
-                 '[run]\ntaxonomy_from = "categories"\n[engine]\nmemory_limit = "1GB"\nthreads = 2\n')
+                 '[run]\ntaxonomy_from = "categories"\n[engine]\nmemory_limit = "1GB"\nthreads = 2\n'
+                 'scan_min_rows = 0\n')
     return p
 
 

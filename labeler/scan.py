@@ -1,0 +1,137 @@
+"""The sort-and-scan plan: the label windows computed by one ordered pass instead of two windows.
+
+Without a memory window the rules read a user's history at level L only through running counts
+in time order (DESIGN.md, label rules 2-4; :mod:`labeler.labels` writes them as windows):
+
+- ``known``: the topic's qualifying rows strictly before t reach ``min_support``;
+- ``history_len``: the carried count plus the user's interactions strictly before t;
+- ``known_topics``: ``known_before`` plus the topics whose ``min_support``-th qualifying row is
+  strictly before t.
+
+So one sort of the topic rows by (user, level, time) and one pass over them give all three: rows
+of one time are read against the counts of the earlier times, then added to them. The relational
+plan sorts the rows twice (once per window), and its duplicate collapse is a hash aggregation over
+every interaction; here the rows are sorted by the whole interaction key as well, so duplicates
+lie side by side, and a log that has any is handed back to the relational collapse (a run with
+duplicates costs both; exactness never depends on the check). The label projection that follows
+(:func:`labeler.labels.label_rows`) is the relational one, unchanged.
+
+DuckDB only (the pass runs in this process over the sorted Arrow result); Spark keeps the windows.
+The tests run the golden cases, the MovieLens oracle and the property tests on both plans.
+"""
+from __future__ import annotations
+
+import functools
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from .config import LabelConfig
+
+ORDER = ("user_id", "level", "ts_us", "item_id", "event_id", "pos")
+
+
+def applies(engine, cfg: LabelConfig, rows: int) -> bool:
+    """Whether labels of ``cfg`` over ``rows`` interactions on ``engine`` take this plan: DuckDB with
+    ``label_plan = "scan"``, at least ``scan_min_rows`` interactions (below, loading the compiled
+    pass costs more than it saves), no memory window (topics are then never forgotten, so counts
+    only grow) and no ``max_user_events`` (whose limit counts collapsed interactions before any
+    label is computed)."""
+    conf = engine.config
+    return (engine.name == "duckdb" and conf.label_plan == "scan" and rows >= conf.scan_min_rows
+            and cfg.memory_us is None and cfg.max_user_events is None)
+
+
+@functools.cache
+def _compiled():
+    """The pass compiled by Numba (imported here: runs that never scan do not load it), cached on disk."""
+    import numba
+    return numba.njit(cache=True, nogil=True)(_pass)
+
+
+def _pass(newseq, ts, topic, q, once, h0, kb, min_support, n_topics):
+    n = ts.shape[0]
+    known = np.zeros(n, np.bool_)
+    hist = np.empty(n, np.int64)
+    ktop = np.empty(n, np.int64)
+    counts = np.zeros(max(n_topics, 1), np.int64)
+    touched = np.empty(max(n_topics, 1), np.int64)
+    n_touched = 0
+    h = 0
+    kc = 0
+    i = 0
+    while i < n:
+        if newseq[i]:  # a new (user, level): forget the previous one's counts
+            for k in range(n_touched):
+                counts[touched[k]] = 0
+            n_touched = 0
+            h = 0
+            kc = 0
+        j = i + 1
+        while j < n and not newseq[j] and ts[j] == ts[i]:
+            j += 1
+        for r in range(i, j):  # rows of one time see only earlier times
+            tp = topic[r]
+            known[r] = tp >= 0 and counts[tp] >= min_support
+            hist[r] = h0[r] + h
+            ktop[r] = kb[r] + kc
+        for r in range(i, j):
+            if once[r]:
+                h += 1
+            if q[r]:
+                tp = topic[r]
+                if counts[tp] == 0:
+                    touched[n_touched] = tp
+                    n_touched += 1
+                counts[tp] += 1
+                if counts[tp] == min_support:
+                    kc += 1
+        i = j
+    return known, hist, ktop
+
+
+def _same(col: pa.ChunkedArray | pa.Array, nulls_equal: bool) -> np.ndarray:
+    """For rows 1..n-1: equal to the row before (two nulls equal when ``nulls_equal``)."""
+    a = col.combine_chunks() if isinstance(col, pa.ChunkedArray) else col
+    n = len(a)
+    cur, prev = a.slice(1), a.slice(0, n - 1)
+    eq = pc.fill_null(pc.equal(cur, prev), False)
+    if nulls_equal and a.null_count:
+        eq = pc.or_(eq, pc.and_(pc.is_null(cur), pc.is_null(prev)))
+    return eq.to_numpy(zero_copy_only=False)
+
+
+def scanned_rows(engine, rows, cfg: LabelConfig):
+    """``with_known_topics(with_support(rows))`` by one sorted pass, as an engine table; None when
+    ``rows`` hold duplicate interactions (same user, item, time and event id), which only the
+    relational collapse may merge. ``rows`` are topic rows (:func:`labeler.labels.topic_rows`,
+    with carried stand-ins or not)."""
+    keep = ["user_id", "item_id", "ts", "ts_us", "event_id", "level", "engagement", "history_len", "topic_id",
+            "pos", "nb", "known_before"]  # what the pass and the label projection read
+    t = engine.sorted_arrow(rows.select(*keep), ORDER)
+    n = t.num_rows
+    newseq = np.ones(n, np.bool_)
+    if n > 1:
+        same_seq = _same(t["user_id"], False) & _same(t["level"], False)
+        interaction = pc.is_valid(t["item_id"]).to_numpy(zero_copy_only=False)[1:]  # stand-ins have no item
+        dup = same_seq & interaction & _same(t["ts_us"], False) & _same(t["item_id"], False) \
+            & _same(t["event_id"], True) & _same(t["pos"], True)
+        if dup.any():
+            return None
+        newseq[1:] = ~same_seq
+    codes = pc.dictionary_encode(t["topic_id"]).combine_chunks()
+    topic = pc.fill_null(codes.indices, -1).to_numpy().astype(np.int64)
+    placed = topic >= 0
+    q = placed
+    if cfg.footprint_from == "engaged":
+        q = placed & pc.greater_equal(t["engagement"], cfg.engaged_min).to_numpy(zero_copy_only=False)
+    once = pc.is_valid(t["item_id"]).to_numpy(zero_copy_only=False) \
+        & pc.fill_null(pc.equal(t["pos"], 0), True).to_numpy(zero_copy_only=False)
+    known, hist, ktop = _compiled()(newseq, t["ts_us"].to_numpy(), topic, q, once,
+                              t["history_len"].to_numpy().astype(np.int64),
+                              t["known_before"].to_numpy().astype(np.int64), int(cfg.min_support),
+                              len(codes.dictionary))
+    t = t.set_column(t.schema.get_field_index("history_len"), "history_len", pa.array(hist))
+    t = t.append_column("known", pa.array(known)).append_column("known_topics", pa.array(ktop))
+    return engine.table(t, "scanned")

@@ -1,0 +1,54 @@
+"""The sort-and-scan label plan (labeler/scan.py): when it is taken, and what it does with duplicates.
+
+Its results are held to the relational windows by the golden cases, the MovieLens oracle and the
+carried-state tests (each runs on "duckdb" and "duckdb-windows", see conftest.py) and by the
+property test ``test_the_sorted_pass_equals_the_windows``.
+"""
+from __future__ import annotations
+
+import pandas as pd
+
+from labeler import LabelConfig
+from labeler.config import EngineConfig
+from labeler.engines import make_engine
+from labeler.labelling import plan_labels
+from labeler.scan import applies, scanned_rows
+from labelcases import log, taxonomy
+
+TAX = taxonomy({"k1": [("knit", 1.0)], "k2": [("knit", 1.0)], "b1": [("bonsai", 1.0)]})
+
+
+def test_the_plan_is_taken_only_where_counts_only_grow():
+    """DuckDB with the default label_plan takes the pass from scan_min_rows interactions on; a memory
+    window, max_user_events or label_plan = "windows" keep the relational windows."""
+    scan, windows = make_engine(EngineConfig(scan_min_rows=0)), make_engine(EngineConfig(label_plan="windows"))
+    assert applies(scan, LabelConfig(), 10) and applies(scan, LabelConfig(min_support=3, multi_topic="any_new"), 10)
+    assert not applies(scan, LabelConfig(memory_days=30), 10)
+    assert not applies(scan, LabelConfig(max_user_events=100), 10)
+    assert not applies(windows, LabelConfig(), 10)
+    default = make_engine(EngineConfig())
+    assert not applies(default, LabelConfig(), 999_999) and applies(default, LabelConfig(), 1_000_000)
+
+
+def test_duplicate_events_are_handed_to_the_collapse():
+    """A log holding one event twice (same user, item, time and event id; the copy with a higher
+    engagement) is not scanned as it came: the pass sees the pair side by side and declines, and the
+    labels come from the collapsed rows, equal to the windows' (one row, the higher engagement)."""
+    df = log(("u", "k1", 0, 1.0, "e1"), ("u", "b1", 5, 0.5, "e2"), ("u", "b1", 5, 2.0, "e2"), ("u", "k2", 9))
+    eng = make_engine(EngineConfig(scan_min_rows=0))
+    run = plan_labels(df, TAX, LabelConfig(), engine=eng)
+    assert scanned_rows(eng, run._raw_rows, LabelConfig()) is None
+    got = run.labels_frame()
+    want = plan_labels(df, TAX, LabelConfig(), engine=make_engine(EngineConfig(label_plan="windows"))).labels_frame()
+    pd.testing.assert_frame_equal(got, want)
+    assert len(got) == 3 and got.loc[got["item_id"] == "b1", "shaped_reward"].tolist() == [4.0]
+
+
+def test_a_log_without_duplicates_is_scanned_as_it_came():
+    """Without duplicates the pass runs over the uncollapsed rows (the collapse is never computed)."""
+    df = log(("u", "k1", 0), ("u", "b1", 5), ("v", "k2", 5), ("u", "k2", 9))
+    eng = make_engine(EngineConfig(scan_min_rows=0))
+    run = plan_labels(df, TAX, LabelConfig(), engine=eng)
+    assert scanned_rows(eng, run._raw_rows, LabelConfig()) is not None
+    assert run.labels_frame()["label"].tolist() == ["cold_start", "new_interest", "in_profile", "cold_start"]
+    assert not run.base_shared
