@@ -100,6 +100,7 @@ class DuckDBEngine(Engine):
     def _connect(self):
         temp = self.config.temp_dir or os.path.join(tempfile.gettempdir(), "labeler-duckdb")
         Path(temp).mkdir(parents=True, exist_ok=True)
+        self.temp_dir = temp
         kwargs = {"memory_limit": self.config.memory_limit, "temp_directory": temp,
                   "preserve_insertion_order": False}
         if self.config.threads:
@@ -142,8 +143,16 @@ class DuckDBEngine(Engine):
         return self.con.con.sql(sql).to_arrow_table()
 
     def drop_table(self, table) -> None:
-        """Release a table registered by ``table`` (its Arrow data is no longer held)."""
-        self.con.con.unregister(table.get_name())
+        """Forget ``table``, made by ``table()`` (its Arrow data is no longer held) or ``read_parquet``."""
+        name = table.get_name()
+        if name.startswith("ibis_read_parquet"):
+            self.con.drop_view(name, force=True)
+        else:
+            self.con.con.unregister(name)
+
+    def scratch_path(self, prefix: str, suffix: str) -> Path:
+        """A new file name in the engine's temp_dir (the caller removes the file)."""
+        return Path(self.temp_dir) / f"{prefix}-{uuid.uuid4().hex}{suffix}"
 
     def to_batches(self, expr, rows: int = 65_536):
         """Stream the result as Arrow record batches (ibis 12's streaming predates duckdb 2.0)."""

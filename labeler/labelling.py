@@ -152,7 +152,7 @@ class LabelRun:
     _new_rows: Any = None  # with carried state: the new events' topic rows, cached
     scan: bool = False     # labels by the sort-and-scan plan (labeler.scan)
     _raw_rows: Any = None  # for the scan plan: the topic rows before the duplicate collapse
-    _scanned: Any = None   # for the scan plan: the scanned rows (Arrow held by the engine) under the labels
+    _scanned: Any = None   # for the scan plan: the scanned rows under the labels (scan.Scanned)
 
     @property
     def labels(self):
@@ -169,18 +169,18 @@ class LabelRun:
         """The labels by one sorted pass (:mod:`labeler.scan`): over the topic rows as they came
         when nothing has read them yet and they hold no duplicate interaction, else over the
         collapsed (shared) ones."""
-        rows = None
+        scanned = None
         if not self.base_shared and self._raw_rows is not None:
-            rows = scanned_rows(self.engine, self._raw_rows, self.config)
-            if rows is None:
+            scanned = scanned_rows(self.engine, self._raw_rows, self.config)
+            if scanned is None:
                 log.info("the interactions hold duplicate events: collapsing them before labelling")
-        if rows is None:
-            rows = scanned_rows(self.engine, self.base, self.config)
-        if rows is None:  # cannot happen after the collapse; the windows are the rules' reference
+        if scanned is None:
+            scanned = scanned_rows(self.engine, self.base, self.config)
+        if scanned is None:  # cannot happen after the collapse; the windows are the rules' reference
             return _label_expr(self.base, self.transitions, self.config, self.single_topic,
                                _topic_bound(self.taxonomy), self.carried_until_us)
-        self._scanned = rows
-        labels = label_rows(rows, self.config, self.single_topic)
+        self._scanned = scanned
+        labels = label_rows(scanned.table, self.config, self.single_topic)
         until = self.carried_until_us
         return labels if until is None else labels.filter(labels.ts_us > until)
 
@@ -265,7 +265,7 @@ class LabelRun:
 
     def _drop_scanned(self) -> None:
         if self._scanned is not None:
-            self.engine.drop_table(self._scanned)
+            self._scanned.release()
             self._scanned = None
 
     def release(self) -> None:

@@ -22,14 +22,18 @@ The tests run the golden cases, the MovieLens oracle and the property tests on b
 from __future__ import annotations
 
 import functools
+import weakref
+from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
+import pyarrow.parquet as pq
 
 from .config import LabelConfig
 
 ORDER = ("user_id", "level", "ts_us", "item_id", "event_id", "pos")
+BATCH_ROWS = 1 << 20  # sorted rows fetched at a time
 
 
 def applies(engine, cfg: LabelConfig, rows: int) -> bool:
@@ -106,20 +110,49 @@ def scanned_rows(engine, rows, cfg: LabelConfig):
     """``with_known_topics(with_support(rows))`` by one sorted pass, as an engine table; None when
     ``rows`` hold duplicate interactions (same user, item, time and event id), which only the
     relational collapse may merge. ``rows`` are topic rows (:func:`labeler.labels.topic_rows`,
-    with carried stand-ins or not)."""
+    with carried stand-ins or not).
+
+    The sorted rows stream through this process in batches, cut so that each chunk holds whole
+    (user, level) sequences; the scanned chunks stay in memory up to a quarter of the engine's
+    ``memory_limit`` and are written to a scratch Parquet file in the engine's ``temp_dir`` beyond
+    it, so memory follows a batch and the limit, not the log. Returns a :class:`Scanned`, whose
+    ``table`` is the engine table (``release`` it when done).
+    """
     keep = ["user_id", "item_id", "ts", "ts_us", "event_id", "level", "engagement", "history_len", "topic_id",
             "pos", "nb", "known_before"]  # what the pass and the label projection read
-    t = engine.sorted_arrow(rows.select(*keep), ORDER)
-    n = t.num_rows
-    newseq = np.ones(n, np.bool_)
-    if n > 1:
-        same_seq = _same(t["user_id"], False) & _same(t["level"], False)
+    out = Scanned(engine, budget=_bytes(engine.config.memory_limit) // 4)
+    tail = None
+    reader = engine.sorted_batches(rows.select(*keep), list(ORDER), BATCH_ROWS)
+    for batch in reader:
+        t = pa.Table.from_batches([batch]) if tail is None else pa.concat_tables([tail, pa.Table.from_batches([batch])])
+        newseq = _new_sequences(t)
+        starts = np.flatnonzero(newseq)
+        cut = int(starts[-1]) if len(starts) else 0  # the last sequence may go on in the next batch
+        if cut and not out.add(_scan_chunk(t.slice(0, cut), newseq[:cut], cfg)):
+            return out.discard()
+        tail = t.slice(cut)
+    if tail is not None and tail.num_rows and not out.add(_scan_chunk(tail, _new_sequences(tail), cfg)):
+        return out.discard()
+    return out.finish(reader.schema)
+
+
+def _new_sequences(t: pa.Table) -> np.ndarray:
+    """True where a row starts a (user, level) sequence; the first row always does."""
+    newseq = np.ones(t.num_rows, np.bool_)
+    if t.num_rows > 1:
+        newseq[1:] = ~(_same(t["user_id"], False) & _same(t["level"], False))
+    return newseq
+
+
+def _scan_chunk(t: pa.Table, newseq: np.ndarray, cfg: LabelConfig) -> pa.Table | None:
+    """The pass over whole sequences ``t``; None if two rows are one interaction twice (sorted by
+    the whole key, they lie side by side)."""
+    if t.num_rows > 1:
         interaction = pc.is_valid(t["item_id"]).to_numpy(zero_copy_only=False)[1:]  # stand-ins have no item
-        dup = same_seq & interaction & _same(t["ts_us"], False) & _same(t["item_id"], False) \
+        dup = ~newseq[1:] & interaction & _same(t["ts_us"], False) & _same(t["item_id"], False) \
             & _same(t["event_id"], True) & _same(t["pos"], True)
         if dup.any():
             return None
-        newseq[1:] = ~same_seq
     codes = pc.dictionary_encode(t["topic_id"]).combine_chunks()
     topic = pc.fill_null(codes.indices, -1).to_numpy().astype(np.int64)
     placed = topic >= 0
@@ -129,9 +162,76 @@ def scanned_rows(engine, rows, cfg: LabelConfig):
     once = pc.is_valid(t["item_id"]).to_numpy(zero_copy_only=False) \
         & pc.fill_null(pc.equal(t["pos"], 0), True).to_numpy(zero_copy_only=False)
     known, hist, ktop = _compiled()(newseq, t["ts_us"].to_numpy(), topic, q, once,
-                              t["history_len"].to_numpy().astype(np.int64),
-                              t["known_before"].to_numpy().astype(np.int64), int(cfg.min_support),
-                              len(codes.dictionary))
+                                    t["history_len"].to_numpy().astype(np.int64),
+                                    t["known_before"].to_numpy().astype(np.int64), int(cfg.min_support),
+                                    len(codes.dictionary))
     t = t.set_column(t.schema.get_field_index("history_len"), "history_len", pa.array(hist))
-    t = t.append_column("known", pa.array(known)).append_column("known_topics", pa.array(ktop))
-    return engine.table(t, "scanned")
+    return t.append_column("known", pa.array(known)).append_column("known_topics", pa.array(ktop))
+
+
+class Scanned:
+    """Where scanned chunks go: held in memory up to ``budget`` bytes, then a scratch Parquet file
+    (removed by ``release``, or when this object is collected)."""
+
+    def __init__(self, engine, budget: int):
+        self.engine, self.budget = engine, budget
+        self.chunks: list[pa.Table] = []
+        self.held = 0
+        self.path: Path | None = None
+        self.writer: pq.ParquetWriter | None = None
+        self.table = None
+
+    def add(self, chunk: pa.Table | None) -> bool:
+        if chunk is None:
+            return False
+        if self.writer is None:
+            self.chunks.append(chunk)
+            self.held += chunk.nbytes
+            if self.held > self.budget:  # from here on the chunks go to disk
+                self.path = self.engine.scratch_path("scanned", ".parquet")
+                weakref.finalize(self, self.path.unlink, missing_ok=True)
+                self.writer = pq.ParquetWriter(self.path, chunk.schema, compression="lz4")
+                for c in self.chunks:
+                    self.writer.write_table(c)
+                self.chunks, self.held = [], 0
+        else:
+            self.writer.write_table(chunk)
+        return True
+
+    def discard(self) -> None:
+        if self.writer is not None:
+            self.writer.close()
+            self.path.unlink(missing_ok=True)
+        return None
+
+    def finish(self, schema: pa.Schema) -> "Scanned":
+        """Make ``table``: the scanned rows as an engine table."""
+        if self.writer is not None:
+            self.writer.close()
+            self.table = self.engine.read_parquet(self.path)
+            return self
+        if not self.chunks:  # no rows: the columns alone
+            empty = schema.empty_table()
+            self.chunks = [empty.append_column("known", pa.array([], pa.bool_()))
+                           .append_column("known_topics", pa.array([], pa.int64()))]
+        self.table = self.engine.table(pa.concat_tables(self.chunks), "scanned")
+        self.chunks = []
+        return self
+
+    def release(self) -> None:
+        """Forget the table and its data (the labels over it are not read again)."""
+        if self.table is not None:
+            self.engine.drop_table(self.table)
+            self.table = None
+        if self.path is not None:
+            self.path.unlink(missing_ok=True)
+
+
+def _bytes(limit: str) -> int:
+    """Bytes of a DuckDB memory limit such as "4GB", "500MiB" (1 GiB when it cannot be read)."""
+    import re
+    m = re.fullmatch(r"\s*([0-9.]+)\s*([KMGT]?)(i?)B?\s*", str(limit), flags=re.IGNORECASE)
+    if not m:
+        return 1 << 30
+    base = 1024 if m.group(3) else 1000
+    return int(float(m.group(1)) * base ** " KMGT".index(m.group(2).upper() or " "))

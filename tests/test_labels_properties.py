@@ -126,15 +126,22 @@ def _plan_results(log: pd.DataFrame, cfg: LabelConfig, plan: str, cut: pd.Timest
 
 
 @settings(max_examples=20, deadline=None, suppress_health_check=[HealthCheck.too_slow])
-@given(events, st.sampled_from(PLAN_CONFIGS), st.integers(0, 7), st.booleans())
-def test_the_sorted_pass_equals_the_windows(evs, cfg, cut_hour, dedupe):
+@given(events, st.sampled_from(PLAN_CONFIGS), st.integers(0, 7), st.booleans(), st.booleans())
+def test_the_sorted_pass_equals_the_windows(evs, cfg, cut_hour, dedupe, small_batches):
     """labeler/scan.py's sorted pass gives the relational windows' labels and footprints, on logs
-    with duplicate events (handed back to the collapse) and without, and continued from state
-    carried at a cut: the windows are the rules as written (labeler/labels.py)."""
+    with duplicate events (handed back to the collapse) and without, continued from state carried
+    at a cut, and (``small_batches``) streamed three rows at a time with every chunk written to a
+    scratch file: the windows are the rules as written (labeler/labels.py)."""
+    from unittest import mock
+
+    import labeler.scan as scan
     df = frame(evs)
     df["event_type"] = ["view" if k % 3 else "click" for k in range(len(df))]
     if dedupe:
         df = df.drop_duplicates(["user_id", "item_id", "ts", "event_id"])
     cut = T0 + pd.Timedelta(hours=cut_hour)
-    for a, b in zip(_plan_results(df, cfg, "scan", cut), _plan_results(df, cfg, "windows", cut)):
+    with mock.patch.object(scan, "BATCH_ROWS", 3 if small_batches else scan.BATCH_ROWS), \
+            mock.patch.object(scan, "_bytes", (lambda limit: 0) if small_batches else scan._bytes):
+        got = _plan_results(df, cfg, "scan", cut)
+    for a, b in zip(got, _plan_results(df, cfg, "windows", cut)):
         pd.testing.assert_frame_equal(a, b)

@@ -49,6 +49,31 @@ def test_a_log_without_duplicates_is_scanned_as_it_came():
     df = log(("u", "k1", 0), ("u", "b1", 5), ("v", "k2", 5), ("u", "k2", 9))
     eng = make_engine(EngineConfig(scan_min_rows=0))
     run = plan_labels(df, TAX, LabelConfig(), engine=eng)
-    assert scanned_rows(eng, run._raw_rows, LabelConfig()) is not None
+    assert scanned_rows(eng, run._raw_rows, LabelConfig()).table is not None
     assert run.labels_frame()["label"].tolist() == ["cold_start", "new_interest", "in_profile", "cold_start"]
     assert not run.base_shared
+
+
+def test_chunks_beyond_the_budget_go_to_a_scratch_file(monkeypatch, tmp_path):
+    """Streamed two rows at a time with no memory budget, every chunk goes to a scratch Parquet file
+    in temp_dir; the labels equal the windows', and releasing the run removes the file."""
+    import labeler.scan as scan
+    monkeypatch.setattr(scan, "BATCH_ROWS", 2)
+    monkeypatch.setattr(scan, "_bytes", lambda limit: 0)
+    df = log(("u", "k1", 0), ("u", "b1", 5), ("v", "k2", 5), ("u", "k2", 9), ("u", "b1", 9), ("v", "b1", 12))
+    eng = make_engine(EngineConfig(scan_min_rows=0, temp_dir=str(tmp_path)))
+    run = plan_labels(df, TAX, LabelConfig(), engine=eng)
+    got = run.labels_frame()
+    assert run._scanned.path is not None and run._scanned.path.exists()
+    want = plan_labels(df, TAX, LabelConfig(), engine=make_engine(EngineConfig(label_plan="windows"))).labels_frame()
+    pd.testing.assert_frame_equal(got, want)
+    path = run._scanned.path
+    run.release()
+    assert not path.exists()
+
+
+def test_memory_limits_read_as_bytes():
+    """DuckDB's memory_limit strings, decimal and binary units (DuckDB's documentation: "1GB", "1GiB")."""
+    from labeler.scan import _bytes
+    assert _bytes("4GB") == 4 * 10**9 and _bytes("500MiB") == 500 * 2**20 and _bytes("1.5 GB") == 1_500_000_000
+    assert _bytes("lots") == 2**30
