@@ -6,7 +6,8 @@ after W, and the footprints at the end, must equal a run over the whole log.
 
 Outside check: MovieLens 100K (GroupLens; Harper & Konstan, ACM TiiS 2015), genres as an editorial
 multi-label taxonomy, for every configuration of the oracle suite plus memory with min_support > 1,
-on every engine. Property check: random small logs with dense ties and multi-topic items (DuckDB).
+on every engine (DuckDB with the sorted pass and with the windows, Spark). Property check: random
+small logs with dense ties and multi-topic items (DuckDB).
 """
 from __future__ import annotations
 

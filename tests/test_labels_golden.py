@@ -12,7 +12,8 @@ from labelcases import T0, log, rows, taxonomy
 
 @pytest.fixture(autouse=True)
 def _each_engine(on_engine):
-    """Every golden case runs on DuckDB and on Spark (local mode): no expected differences."""
+    """Every golden case runs on DuckDB (the sorted pass and the windows) and on Spark (local mode):
+    no expected differences."""
     return on_engine
 
 
