@@ -16,8 +16,9 @@ lie side by side, and a log that has any is handed back to the relational collap
 duplicates costs both; exactness never depends on the check). The label projection that follows
 (:func:`labeler.labels.label_rows`) is the relational one, unchanged.
 
-DuckDB only (the pass runs in this process over the sorted Arrow result); Spark keeps the windows.
-The tests run the golden cases, the MovieLens oracle and the property tests on both plans.
+DuckDB only (the sorted rows stream through this process in Arrow batches, each chunk of whole
+users through the compiled loop); Spark keeps the windows. The tests run the golden cases, the
+MovieLens oracle and the carried-state tests on both plans, and a property test compares them.
 """
 from __future__ import annotations
 
@@ -55,6 +56,9 @@ def _compiled():
 
 
 def _pass(newseq, ts, topic, q, once, h0, kb, min_support, n_topics):
+    """(known, history_len, known_topics) of rows sorted by (user, level, time); ``newseq`` marks
+    each (user, level)'s first row, ``topic`` is a code (-1: unplaced), ``q`` qualifies, ``once``
+    is an interaction's first topic row at its level, ``h0`` / ``kb`` the carried offsets."""
     n = ts.shape[0]
     known = np.zeros(n, np.bool_)
     hist = np.empty(n, np.int64)

@@ -113,6 +113,9 @@ def test_demo_small_runs_every_stage(cli, tmp_path):
     job = json.loads((tmp_path / "d" / "demo-summary.json").read_text())["job"]
     assert [r["mode"] for r in job["runs"]] == ["full", "incremental"]
     assert job["labels_equal_batch_labels"] is True
+    plans = json.loads((tmp_path / "d" / "demo-summary.json").read_text())["labels"]["plans"]
+    assert plans["scan"]["same_labels"] and plans["windows"]["same_labels"]  # labeler/scan.py equals the windows
+    assert "both equal the labels written: yes" in out
     evaluation = json.loads((tmp_path / "d" / "demo-summary.json").read_text())["evaluation"]
     assert set(evaluation["policies"]) == {"popularity", "in_profile", "explore_mix"}
     assert evaluation["expected_order_holds"] is True

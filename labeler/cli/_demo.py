@@ -43,6 +43,10 @@ def run(args) -> int:
         print(f"labels level {level}: in_profile {c['in_profile']}, new_interest {c['new_interest']}, "
               f"cold_start {c['cold_start']}, unplaced {c['unplaced']}; discovery "
               f"{100 * v['discovery_share']:.1f}%")
+    pl = lab["plans"]
+    print(f"label plans: the sorted pass {pl['scan']['seconds']:.1f}s (with loading it), the windows "
+          f"{pl['windows']['seconds']:.1f}s; both equal the labels written: "
+          f"{'yes' if pl['scan']['same_labels'] and pl['windows']['same_labels'] else 'NO'}")
     print(f"true new-interest events after the burn-in ({lab['label_from'][:10]}): "
           f"{lab['true_new_interest_events_after_burn_in']}, labelled new_interest at level 1: "
           f"{100 * lab['share_labelled_new_interest_level1']:.1f}%")
