@@ -137,18 +137,11 @@ class DuckDBEngine(Engine):
         self.con.con.register(name, arrow)  # the connection holds the table while the view exists
         return self.con.table(name)
 
-    def sorted_arrow(self, expr, keys) -> pa.Table:
-        """The rows of ``expr`` ordered by ``keys`` (ascending, nulls last), as one Arrow table."""
-        sql = self.con.compile(expr.order_by([ibis.asc(expr[k], nulls_first=False) for k in keys]))
-        return self.con.con.sql(sql).to_arrow_table()
-
     def drop_table(self, table) -> None:
         """Forget ``table``, made by ``table()`` (its Arrow data is no longer held) or ``read_parquet``."""
         name = table.get_name()
-        if name.startswith("ibis_read_parquet"):
-            self.con.drop_view(name, force=True)
-        else:
-            self.con.con.unregister(name)
+        self.con.con.unregister(name)  # a registered Arrow table (a no-op for a plain view)
+        self.con.drop_view(name, force=True)  # a view over files (a no-op once unregistered)
 
     def scratch_path(self, prefix: str, suffix: str) -> Path:
         """A new file name in the engine's temp_dir (the caller removes the file)."""

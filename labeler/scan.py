@@ -125,7 +125,7 @@ def scanned_rows(engine, rows, cfg: LabelConfig):
     keep = ["user_id", "item_id", "ts", "ts_us", "event_id", "level", "engagement", "history_len", "topic_id",
             "pos", "nb", "known_before"]  # what the pass and the label projection read
     out = Scanned(engine, budget=_bytes(engine.config.memory_limit) // 4)
-    tail = None
+    tail, tail_newseq = None, None
     reader = engine.sorted_batches(rows.select(*keep), list(ORDER), BATCH_ROWS)
     for batch in reader:
         t = pa.Table.from_batches([batch]) if tail is None else pa.concat_tables([tail, pa.Table.from_batches([batch])])
@@ -134,8 +134,8 @@ def scanned_rows(engine, rows, cfg: LabelConfig):
         cut = int(starts[-1]) if len(starts) else 0  # the last sequence may go on in the next batch
         if cut and not out.add(_scan_chunk(t.slice(0, cut), newseq[:cut], cfg)):
             return out.discard()
-        tail = t.slice(cut)
-    if tail is not None and tail.num_rows and not out.add(_scan_chunk(tail, _new_sequences(tail), cfg)):
+        tail, tail_newseq = t.slice(cut), newseq[cut:]
+    if tail is not None and tail.num_rows and not out.add(_scan_chunk(tail, tail_newseq, cfg)):
         return out.discard()
     return out.finish(reader.schema)
 
@@ -151,9 +151,9 @@ def _new_sequences(t: pa.Table) -> np.ndarray:
 def _scan_chunk(t: pa.Table, newseq: np.ndarray, cfg: LabelConfig) -> pa.Table | None:
     """The pass over whole sequences ``t``; None if two rows are one interaction twice (sorted by
     the whole key, they lie side by side)."""
+    has_item = pc.is_valid(t["item_id"]).to_numpy(zero_copy_only=False)  # stand-ins have no item
     if t.num_rows > 1:
-        interaction = pc.is_valid(t["item_id"]).to_numpy(zero_copy_only=False)[1:]  # stand-ins have no item
-        dup = ~newseq[1:] & interaction & _same(t["ts_us"], False) & _same(t["item_id"], False) \
+        dup = ~newseq[1:] & has_item[1:] & _same(t["ts_us"], False) & _same(t["item_id"], False) \
             & _same(t["event_id"], True) & _same(t["pos"], True)
         if dup.any():
             return None
@@ -163,8 +163,7 @@ def _scan_chunk(t: pa.Table, newseq: np.ndarray, cfg: LabelConfig) -> pa.Table |
     q = placed
     if cfg.footprint_from == "engaged":
         q = placed & pc.greater_equal(t["engagement"], cfg.engaged_min).to_numpy(zero_copy_only=False)
-    once = pc.is_valid(t["item_id"]).to_numpy(zero_copy_only=False) \
-        & pc.fill_null(pc.equal(t["pos"], 0), True).to_numpy(zero_copy_only=False)
+    once = has_item & pc.fill_null(pc.equal(t["pos"], 0), True).to_numpy(zero_copy_only=False)
     known, hist, ktop = _compiled()(newseq, t["ts_us"].to_numpy(), topic, q, once,
                                     t["history_len"].to_numpy().astype(np.int64),
                                     t["known_before"].to_numpy().astype(np.int64), int(cfg.min_support),
