@@ -28,7 +28,7 @@ from .engines import Engine, make_engine, sums_digest
 from .intake import Staged, interactions_table, item_topics_table
 from .intake import _COLUMNS as _INPUT_COLUMNS
 from .labels import carried_rows, continue_history, continued_history, each_interaction_once, footprint_rows, \
-    heavy_users, known_transitions, label_rows, prepare, topic_rows, user_history, with_carried, \
+    heavy_users, known_transitions, label_rows, prepare, topic_rows, touched_carried, user_history, with_carried, \
     with_known_topics, with_support
 from .scan import applies as scan_applies
 from .scan import scanned_rows
@@ -150,6 +150,7 @@ class LabelRun:
     written: dict | None = None  # after a write in pieces: the footprints file and history it wrote
     _with_all_carried: Any = None  # with carried state: the topic rows plus stand-ins of every carried topic
     _new_rows: Any = None  # with carried state: the new events' topic rows, cached
+    _touched_carried: Any = None  # with carried state, no memory: the carried rows of the topics they name, cached
     scan: bool = False     # labels by the sort-and-scan plan (labeler.scan)
     _raw_rows: Any = None  # for the scan plan: the topic rows before the duplicate collapse
     _scanned: Any = None   # for the scan plan: the scanned rows under the labels (scan.Scanned)
@@ -241,7 +242,8 @@ class LabelRun:
         if self.carried is None:
             return self.footprints
         return footprint_rows(self.base, self.transitions, self.config, self._footprints_as_of_us, history=self.history,
-                              carried=self.carried[0], carried_until_us=self.carried_until_us, touched_only=True)
+                              carried=self.carried[0] if self._touched_carried is None else self._touched_carried,
+                              carried_until_us=self.carried_until_us, touched_only=True)
 
     @property
     def history(self):
@@ -270,7 +272,7 @@ class LabelRun:
 
     def release(self) -> None:
         """Drop the engine tables ``materialize`` cached (the run is not read again after this)."""
-        for t in (self._labels, self._base, self._new_rows):
+        for t in (self._labels, self._base, self._new_rows, self._touched_carried):
             if hasattr(t, "release"):
                 t.release()
         self._drop_scanned()
@@ -635,10 +637,13 @@ def plan_labels(interactions, taxonomy, config: LabelConfig | None = None, *,
                                   "of earlier ones over their whole history.")
         prepared = continue_history(prepared, state[1])
     base = whole = topic_rows(prepared, it, levels, has_valid)
+    touched = None
     if state is not None:
         base = new_rows = base.cache()  # the new events' topic rows are read three times below: collapse them once
         whole = base.union(carried_rows(state[0], base, cfg), distinct=False)
-        base = with_carried(base, state[0], cfg)
+        if cfg.memory_us is None:  # the carried rows of the topics the new events name, read twice: once
+            touched = touched_carried(base, state[0]).cache()
+        base = with_carried(base, state[0], cfg, touched=touched)
     transitions = known_transitions(base, cfg)
     scan = scan_applies(eng, cfg, intake.rows_in)
     labels = None if scan else _label_expr(base, transitions, cfg, single_topic, _topic_bound(taxonomy), until)
@@ -649,7 +654,8 @@ def plan_labels(interactions, taxonomy, config: LabelConfig | None = None, *,
                                           __version__]).encode()).hexdigest()
     return LabelRun(eng, cfg, taxonomy.version, version, labels, base, transitions, ev, intake, as_of, heavy=heavy,
                     single_topic=single_topic, carried=state, carried_until_us=until, taxonomy=taxonomy,
-                    _with_all_carried=whole, _new_rows=new_rows, scan=scan, _raw_rows=raw)
+                    _with_all_carried=whole, _new_rows=new_rows, _touched_carried=touched, scan=scan,
+                    _raw_rows=raw)
 
 
 def _topic_bound(taxonomy) -> int:

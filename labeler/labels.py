@@ -88,14 +88,21 @@ def carried_rows(carried: ir.Table, like: ir.Table, cfg: LabelConfig) -> ir.Tabl
                         for k in like.columns])
 
 
-def with_carried(rows: ir.Table, carried: ir.Table, cfg: LabelConfig) -> ir.Table:
+def touched_carried(rows: ir.Table, carried: ir.Table) -> ir.Table:
+    """The rows of ``carried`` whose (user, level, topic) the topic rows ``rows`` name."""
+    keys = ["user_id", "level", "topic_id"]
+    return carried.semi_join(rows.filter(rows.topic_id.notnull()).select(*keys).distinct(), keys)
+
+
+def with_carried(rows: ir.Table, carried: ir.Table, cfg: LabelConfig, touched: ir.Table | None = None) -> ir.Table:
     """The new topic rows and what labelling them needs of the carried footprints ``carried``.
 
     Each (user, level, topic) the new rows name gets its stand-ins (``carried_rows``). Without
     memory, a carried topic the new rows do not name is known at every new event if it was known
     at the watermark, and at none otherwise, so it adds one to the ``known_before`` of the user's
     new rows at that level instead of rows of its own. With memory a topic can be forgotten after
-    the watermark, so every carried topic keeps its stand-ins.
+    the watermark, so every carried topic keeps its stand-ins. ``touched``: ``touched_carried(rows,
+    carried)`` when the caller has it (computed once, as a table of its own, for several reads).
     """
     if cfg.memory_us is not None:
         return rows.union(carried_rows(carried, rows, cfg), distinct=False)
@@ -107,7 +114,8 @@ def with_carried(rows: ir.Table, carried: ir.Table, cfg: LabelConfig) -> ir.Tabl
     j = rows.left_join(before, [rows.user_id == before._u, rows.level == before._l])
     rows = j.select(*[(j._kb.fill_null(0) + j.known_before).cast("int64").name(c) if c == "known_before" else j[c]
                       for c in rows.columns])
-    return rows.union(carried_rows(carried.semi_join(named, keys), rows, cfg), distinct=False)
+    touched = touched_carried(rows, carried) if touched is None else touched
+    return rows.union(carried_rows(touched, rows, cfg), distinct=False)
 
 
 def heavy_users(ev: ir.Table, cfg: LabelConfig) -> ir.Table:
