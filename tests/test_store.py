@@ -164,6 +164,23 @@ def test_publishing_changed_users_as_layers_answers_like_a_full_publish(tmp_path
     assert after.pop("dee")[1] == () and {u: a for u, a in before.items() if u != "dee"} == after
 
 
+def test_a_layered_publish_counts_the_users_a_shard_held_whatever_their_ids(tmp_path):
+    """The count of changed users a shard already holds (the manifest's user total follows from it)
+    is right for ids JSON text would escape or cut: quotes, backslashes, tabs, non-BMP text, NUL."""
+    import sqlite3
+    import pyarrow as pa
+    from labeler.store.publish import _held
+    ids = ["ana", "é", "\U0001F600", 'q"uote', "back\\slash", "tab\t", "nul\x00x"]
+    shard = tmp_path / "users-00.sqlite"
+    con = sqlite3.connect(shard)
+    con.execute("CREATE TABLE users (user_id TEXT PRIMARY KEY, history_len INTEGER, whole INTEGER) WITHOUT ROWID")
+    con.executemany("INSERT INTO users VALUES (?, 1, 1)", [(u,) for u in ids])
+    con.commit()
+    con.close()
+    assert _held([shard], pa.array(ids + ["new"])) == 7  # with a NUL: the ids go in one by one
+    assert _held([shard], pa.array(ids[:-1] + ["new", "nul"])) == 6  # without: as one JSON parameter
+
+
 def test_interrupted_publish_leaves_the_previous_snapshot_served(tmp_path, monkeypatch):
     """A publish that fails before the pointer switch leaves readers on the previous snapshot."""
     import labeler.store.publish as st
