@@ -540,13 +540,15 @@ class _Run:
         starts = [parts[n].min_ts_us for n in staged_new if parts[n].min_ts_us is not None]
         starts += [p.min_ts_us for p in affected_old if p.min_ts_us is not None]
         exact: set[str] = set()
-        day_users: set[str] = set()
+        day_users = pa.array([], pa.string())
         import duckdb
         con = quiet(duckdb.connect())
-        if new_files:
-            for user, first in con.execute("SELECT user_id, min(epoch_us(ts)) FROM read_parquet(?) GROUP BY user_id",
-                                           [new_files]).fetchall():
-                (exact if first <= watermark else day_users).add(user)
+        if new_files:  # as Arrow, sorted by DuckDB: the day's users are many (Python tuples cost 0.3 s a million)
+            firsts = con.sql("SELECT user_id, min(epoch_us(ts)) <= ? AS early FROM read_parquet(?) GROUP BY user_id "
+                             "ORDER BY user_id", params=[watermark, new_files]).to_arrow_table()
+            early = firsts.column("early")
+            exact |= set(firsts.column("user_id").filter(early).to_pylist())
+            day_users = firsts.column("user_id").filter(pc.invert(early))
         if old_files:
             exact |= {r[0] for r in con.execute("SELECT DISTINCT user_id FROM read_parquet(?)", [old_files]).fetchall()}
         first_seen = changes.get("first_seen") or {}
@@ -559,7 +561,9 @@ class _Run:
             starts.append(min(first_seen.values()))
         if changes["added_rows"]:
             starts.append(watermark + 1)
-        return sorted(exact), sorted(day_users - exact), (min(starts) if starts else None)
+        if exact and len(day_users):
+            day_users = day_users.filter(pc.invert(pc.is_in(day_users, value_set=pa.array(sorted(exact), pa.string()))))
+        return sorted(exact), day_users.to_pylist(), (min(starts) if starts else None)
 
     def _write_generation(self, writer: GenerationWriter, runs: list, start_us: int | None, streamed: bool,
                           continued: pa.Array | None = None, on_new_rows=None) -> int:
@@ -650,10 +654,26 @@ class _Run:
         """labels_version of each output date: the taxonomy, the label settings, the tool, and the
         inputs those labels can depend on (partitions with events before the date's end, register
         rows valid before it). Equal for incremental and full runs over the same inputs."""
-        days, reg_hashes = register_hash_by_day(register)
+        days, reg_hashes = self._register_days(register)
         head = "\x00".join([tax.version, self.cfg.labels.canonical_json(), __version__])
         spans = sorted((p.min_ts_us, n, p.hash) for n, p in parts.items() if p.rows and p.min_ts_us is not None)
         return DateVersions(days, list(reg_hashes), head, spans)
+
+    def _register_days(self, register: pd.DataFrame) -> tuple[np.ndarray, list[str]]:
+        """``register_hash_by_day`` of the register, kept beside its file (which its content names):
+        hashing every row costs 0.3 s a run for 100k items, and the register rarely changes."""
+        cache = self.work / f"{self.register_rel.removesuffix('.parquet')}.days.json"
+        try:
+            got = json.loads(cache.read_text())
+            if got["tool"] == __version__:
+                return np.array(got["days"], dtype=np.int64), got["hashes"]
+        except (OSError, ValueError, KeyError, TypeError):
+            pass  # none yet, or unreadable: computed again
+        days, hashes = register_hash_by_day(register)
+        tmp = cache.with_name(f".{cache.name}.{uuid.uuid4().hex}")
+        tmp.write_text(json.dumps({"tool": __version__, "days": days.tolist(), "hashes": list(hashes)}))
+        os.replace(tmp, cache)
+        return days, list(hashes)
 
     # -- cleaning -------------------------------------------------------------------------------
     def _clean(self, state) -> None:
@@ -675,8 +695,9 @@ class _Run:
                 if rel not in referenced:
                     f.unlink(missing_ok=True)
         reg = self.work / "items"
-        for f in reg.glob("register-*.parquet"):
-            if f"items/{f.name}" != state["register"]:
+        keep_days = f"items/{state['register'].removesuffix('.parquet')}.days.json"
+        for f in [*reg.glob("register-*.parquet"), *reg.glob("register-*.days.json")]:
+            if f"items/{f.name}" not in (state["register"], keep_days):
                 f.unlink(missing_ok=True)
 
 
