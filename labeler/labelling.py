@@ -641,7 +641,8 @@ def plan_labels(interactions, taxonomy, config: LabelConfig | None = None, *,
     if state is not None:
         base = new_rows = base.cache()  # the new events' topic rows are read three times below: collapse them once
         whole = base.union(carried_rows(state[0], base, cfg), distinct=False)
-        if cfg.memory_us is None:  # the carried rows of the topics the new events name, read twice: once
+        if cfg.memory_us is None:  # the carried rows of the topics the new events name: their stand-ins and
+            # the touched footprints both read them, so they are read from the previous file once
             touched = touched_carried(base, state[0]).cache()
         base = with_carried(base, state[0], cfg, touched=touched)
     transitions = known_transitions(base, cfg)

@@ -642,12 +642,14 @@ class _Run:
     def _staged(self, eng, files: list[str], users: pa.Array | None) -> StagedInput:
         """Staged events of ``files`` as an engine table, cut to ``users`` when given."""
         ev = eng.read_parquet(files)
-        if users is None:
-            rows = sum(pq.ParquetFile(f).metadata.num_rows for f in files)
-        else:
+        if users is not None:
             ev = ev.filter(ev.user_id.isin(eng.table(pa.table({"user_id": users}), "users").user_id))
-            rows = int(eng.to_pandas(ev.aggregate(n=ev.count()))["n"].iloc[0])
-        # the row count chooses the label plan (labeler.scan: the sorted pass from engine.scan_min_rows on)
+        # the row count chooses DuckDB's label plan (labeler.scan: the sorted pass from engine.scan_min_rows
+        # on); other engines have one plan, so they are spared the count
+        rows = 0
+        if eng.name == "duckdb":
+            rows = sum(pq.ParquetFile(f).metadata.num_rows for f in files) if users is None else \
+                int(eng.to_pandas(ev.aggregate(n=ev.count()))["n"].iloc[0])
         return StagedInput(ev, source=self.cfg.interactions, rows=rows, content_hash="job")
 
     def _versions(self, tax, register, parts):
