@@ -88,10 +88,17 @@ def carried_rows(carried: ir.Table, like: ir.Table, cfg: LabelConfig) -> ir.Tabl
                         for k in like.columns])
 
 
+_TOPIC_KEYS = ["user_id", "level", "topic_id"]
+
+
+def _named(rows: ir.Table) -> ir.Table:
+    """The distinct (user, level, topic) the topic rows ``rows`` name."""
+    return rows.filter(rows.topic_id.notnull()).select(*_TOPIC_KEYS).distinct()
+
+
 def touched_carried(rows: ir.Table, carried: ir.Table) -> ir.Table:
     """The rows of ``carried`` whose (user, level, topic) the topic rows ``rows`` name."""
-    keys = ["user_id", "level", "topic_id"]
-    return carried.semi_join(rows.filter(rows.topic_id.notnull()).select(*keys).distinct(), keys)
+    return carried.semi_join(_named(rows), _TOPIC_KEYS)
 
 
 def with_carried(rows: ir.Table, carried: ir.Table, cfg: LabelConfig, touched: ir.Table | None = None) -> ir.Table:
@@ -106,15 +113,14 @@ def with_carried(rows: ir.Table, carried: ir.Table, cfg: LabelConfig, touched: i
     """
     if cfg.memory_us is not None:
         return rows.union(carried_rows(carried, rows, cfg), distinct=False)
-    keys = ["user_id", "level", "topic_id"]
-    named = rows.filter(rows.topic_id.notnull()).select(*keys).distinct()
-    rest = carried.anti_join(named, keys)
+    named = _named(rows)
+    rest = carried.anti_join(named, _TOPIC_KEYS)
     rest = rest.filter(rest.known)
     before = rest.group_by(["user_id", "level"]).aggregate(_kb=rest.count()).rename(_u="user_id", _l="level")
     j = rows.left_join(before, [rows.user_id == before._u, rows.level == before._l])
     rows = j.select(*[(j._kb.fill_null(0) + j.known_before).cast("int64").name(c) if c == "known_before" else j[c]
                       for c in rows.columns])
-    touched = touched_carried(rows, carried) if touched is None else touched
+    touched = carried.semi_join(named, _TOPIC_KEYS) if touched is None else touched  # = touched_carried
     return rows.union(carried_rows(touched, rows, cfg), distinct=False)
 
 
