@@ -44,6 +44,11 @@ class Staged:
     content_hash: str
 
 
+def parquet_rows(files) -> int:
+    """Rows of Parquet files, from their footers (nothing else is read)."""
+    return sum(pq.ParquetFile(f).metadata.num_rows for f in files)
+
+
 def interactions_table(engine, data, input_config: InputConfig | None = None,
                        source: str | None = None):
     """Validate ``data`` and return (engine table with ts_us, Intake)."""
@@ -145,7 +150,7 @@ def _lazy_parquet(engine, path: Path, cfg: InputConfig, source: str):
             intake.note(f"column '{c}' holds integers; cast to strings")
     t = t.select(**cols)
     files = [path] if path.is_file() else sorted(path.rglob("*.parquet"))
-    intake.rows_in = intake.rows_out = sum(pq.ParquetFile(f).metadata.num_rows for f in files)
+    intake.rows_in = intake.rows_out = parquet_rows(files)
     if intake.rows_in == 0:
         raise InputError("the table has no rows.", source=source, hint="Give a non-empty table.")
     blank = lambda c: c.isnull() | (c.strip() == "")  # noqa: E731

@@ -34,13 +34,13 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
-import pyarrow.parquet as pq
 
 from .. import __version__
 from ..config import JobConfig
 from ..engines import make_engine, quiet
 from ..errors import ConfigError, EngineError, InputError, RejectedError
 from ..intake import Staged as StagedInput
+from ..intake import parquet_rows
 from ..labelling import FOOTPRINTS_SCHEMA, Carried, plan_labels
 from ..tables import normalize_items, read_table
 from ..taxonomy import Taxonomy, build_taxonomy
@@ -648,7 +648,7 @@ class _Run:
         # on); other engines have one plan, so they are spared the count
         rows = 0
         if eng.name == "duckdb":
-            rows = sum(pq.ParquetFile(f).metadata.num_rows for f in files) if users is None else \
+            rows = parquet_rows(files) if users is None else \
                 int(eng.to_pandas(ev.aggregate(n=ev.count()))["n"].iloc[0])
         return StagedInput(ev, source=self.cfg.interactions, rows=rows, content_hash="job")
 
