@@ -161,14 +161,15 @@ class DuckDBEngine(Engine):
         disjoint parts of a table, so pieces can be hashed apart and combined (see content_hash).
 
         Each row is rendered canonically (integers in decimal, floats with 9 decimals, booleans as
-        0/1, null as \\N), hashed with MD5, and the two 64-bit halves are summed.
+        0/1, null as \\N), hashed with MD5 once, and the two 64-bit halves are summed (upper: the
+        low 64 bits of DuckDB's ``md5_number``, as ``md5_number_upper`` reads them; lower: the high).
         """
         view = f"_hash_{uuid.uuid4().hex[:8]}"
         self.con.create_view(view, expr.select(*columns), overwrite=True)
         row = canonical_row(expr.select(*columns).schema(), "duckdb")
         n, hi, lo = self.raw_sql(
-            f"SELECT count(*), sum(md5_number_upper(s)::HUGEINT), sum(md5_number_lower(s)::HUGEINT) "
-            f"FROM (SELECT {row} AS s FROM {view})").fetchone()
+            f"SELECT count(*), sum((h & {(1 << 64) - 1}::UHUGEINT)::HUGEINT), sum((h >> 64)::HUGEINT) "
+            f"FROM (SELECT md5_number({row}) AS h FROM {view})").fetchone()
         self.con.drop_view(view)
         return int(n), int(hi or 0), int(lo or 0)
 
@@ -319,7 +320,8 @@ _DIALECTS = {  # quoting, float formatting, integer and text types, the null mar
 
 def canonical_row(schema, dialect: str) -> str:
     """SQL rendering one row of ``schema`` as text, alike on every engine: integers in decimal,
-    floats with 9 decimals, booleans as 0/1, null as \\N, fields joined by chr(31)."""
+    floats with 9 decimals, booleans as 0/1, null as \\N, fields joined by chr(31). One
+    ``concat`` call, not a chain of ``||``: DuckDB renders it about twice as fast."""
     quote, floats, int_type, text_type, null = _DIALECTS[dialect]
     parts = []
     for name, dtype in schema.items():
@@ -331,7 +333,7 @@ def canonical_row(schema, dialect: str) -> str:
         else:
             txt = f"CAST({col} AS {text_type})"
         parts.append(f"COALESCE({txt}, {null})")
-    return " || chr(31) || ".join(parts)
+    return "concat(" + ", chr(31), ".join(parts) + ")"
 
 
 def quiet(con):
