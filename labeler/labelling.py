@@ -90,6 +90,33 @@ class RowGroupWriter:
         self.writer.close()
 
 
+class ScratchWriter:
+    """Writes a piece's rows for a later join (``join_pieces``) as an Arrow IPC file, LZ4 frames:
+    the join re-encodes every row anyway, so the piece need not be Parquet: encoding each row twice
+    and decoding it once was most of what pieces cost over one pass."""
+
+    suffix = ".arrow"
+
+    def __init__(self, dest: Path, schema: pa.Schema):
+        self.writer = pa.ipc.new_file(dest, schema, options=pa.ipc.IpcWriteOptions(compression="lz4"))
+        self.schema, self.rows = schema, 0
+
+    def add(self, table: pa.Table) -> None:
+        if table.num_rows:
+            self.writer.write_table(table.cast(self.schema))
+            self.rows += table.num_rows
+
+    def close(self) -> None:
+        self.writer.close()
+
+
+def write_scratch(table: pa.Table, dest: Path) -> None:
+    """One table as a scratch file for ``join_pieces``."""
+    out = ScratchWriter(dest, table.schema)
+    out.add(table)
+    out.close()
+
+
 @dataclasses.dataclass
 class Carried:
     """State carried at a watermark, to label only events after it (the job's daily path).
@@ -471,16 +498,21 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
     Returns (label rows, footprint rows, summary, history table).
     """
     eng, cfg, ev = run.engine, run.config, run.ev
-    prepared = prepare(ev, cfg)
-    stats = eng.to_arrow(prepared.group_by("user_id").aggregate(n=prepared.count(), mx=prepared.ts_us.max()))
-    raw = eng.to_arrow(ev.group_by("user_id").aggregate(n=ev.count()))
+    # the latest kept event: the collapse of duplicates keeps their time, so without max_user_events
+    # (which counts collapsed rows) it comes with the pieces' row counts, in one pass
+    kept = None if cfg.event_types is None else ev.event_type.isin(list(cfg.event_types))
+    raw = eng.to_arrow(ev.group_by("user_id").aggregate(n=ev.count(), mx=ev.ts_us.max(where=kept)))
     if run.as_of is not None:
         as_of_us = run.as_of_us
+    elif cfg.max_user_events is None:
+        as_of_us = pc.max(raw.column("mx")).as_py()
     else:
-        keep = stats if cfg.max_user_events is None else stats.filter(pc.less_equal(stats.column("n"), cfg.max_user_events))
+        prepared = prepare(ev, cfg)
+        stats = eng.to_arrow(prepared.group_by("user_id").aggregate(n=prepared.count(), mx=prepared.ts_us.max()))
+        keep = stats.filter(pc.less_equal(stats.column("n"), cfg.max_user_events))
         as_of_us = pc.max(keep.column("mx")).as_py()
     as_of = None if as_of_us is None else pd.Timestamp(as_of_us, unit="us", tz="UTC")
-    ranges = user_pieces(raw, limit)
+    ranges = user_pieces(raw.select(["user_id", "n"]), limit)
     log.info("labelling %d interactions of %d users in %d pieces of about %d", run.intake.rows_in, raw.num_rows,
              len(ranges), limit)
     n = 0
@@ -498,9 +530,9 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
                         content_hash=run.intake.content_hash)
         sub = plan_labels(staged, run.taxonomy, cfg, engine=eng, as_of=as_of).materialize()
         sub.labels_version = run.labels_version
-        n += _write_partitioned(sub, tmp / "pieces" / f"{k:06d}")
-        fp_files.append(tmp / "pieces" / f"fp-{k:06d}.parquet")
-        pq.write_table(sub.footprints_arrow(), fp_files[-1])
+        n += _write_partitioned(sub, tmp / "pieces" / f"{k:06d}", ScratchWriter)
+        fp_files.append(tmp / "pieces" / f"fp-{k:06d}.arrow")
+        write_scratch(sub.footprints_arrow(), fp_files[-1])
         histories.append(sub.history_arrow())
         parts.append(sub.summary_parts())
         sums = [x + y for x, y in zip(sums, eng.content_sums(sub.labels, _CANON_COLUMNS))]
@@ -534,16 +566,23 @@ def _join_label_pieces(pieces: Path, root: Path, count: int) -> None:
     dates = sorted({p.name for k in range(count) for p in (pieces / f"{k:06d}").glob("date=*")})
     root.mkdir(parents=True)
     for date in dates:
-        files = [pieces / f"{k:06d}" / date / "part-0.parquet" for k in range(count)]
+        files = [pieces / f"{k:06d}" / date / "part-0.arrow" for k in range(count)]
         (root / date).mkdir()
         join_pieces([f for f in files if f.exists()], root / date / "part-0.parquet", LABELS_SCHEMA)
 
 
 def join_pieces(files: list[Path], dest: Path, schema: pa.Schema) -> int:
-    """Concatenate Parquet files into ``dest`` in ROW_GROUP-row groups, streaming. Returns the rows."""
+    """Concatenate Parquet files (or ScratchWriter's .arrow files) into ``dest`` in ROW_GROUP-row
+    groups, streaming. Returns the rows."""
     dest.parent.mkdir(parents=True, exist_ok=True)
     out = RowGroupWriter(dest, schema)
     for f in files:
+        if Path(f).suffix == ScratchWriter.suffix:
+            with pa.memory_map(str(f)) as source:
+                reader = pa.ipc.open_file(source)
+                for i in range(reader.num_record_batches):
+                    out.add(pa.Table.from_batches([reader.get_batch(i)]))
+            continue
         pf = pq.ParquetFile(f)
         for i in range(pf.num_row_groups):
             out.add(pf.read_row_group(i))
@@ -578,11 +617,14 @@ def _finish_footprints(t: pa.Table) -> pa.Table:
     return t.select([*FOOTPRINTS_COLUMNS, "history_len", "recent_us"]).cast(FOOTPRINTS_SCHEMA)
 
 
-def _write_partitioned(run: LabelRun, root: Path) -> int:
+def _write_partitioned(run: LabelRun, root: Path, writer=None) -> int:
     """Stream labels sorted by (date, user, ts, ...) into one Parquet file per UTC date.
 
     Row groups have a fixed size whatever the engine's batch sizes, so the bytes are repeatable.
+    ``writer=ScratchWriter``: a piece's files, for ``_join_label_pieces``.
     """
+    writer = writer or RowGroupWriter
+    name = "part-0" + getattr(writer, "suffix", ".parquet")
     t = run.labels.mutate(date=run.labels.ts.date().cast("string"))
     t = t.order_by([t.date] + [ibis.asc(t[k], nulls_first=False) for k in SORT_KEYS])
     root.mkdir(parents=True)
@@ -596,7 +638,7 @@ def _write_partitioned(run: LabelRun, root: Path) -> int:
                 if out is not None:
                     out.close()
                 (root / f"date={date}").mkdir()
-                out = RowGroupWriter(root / f"date={date}" / "part-0.parquet", LABELS_SCHEMA)
+                out = writer(root / f"date={date}" / name, LABELS_SCHEMA)
                 current = date
             out.add(_finish_labels(part, run.taxonomy_version, run.labels_version))
             total += part.num_rows

@@ -32,6 +32,7 @@ def scenario():
     s = generate_scenario(7, n_items=600, n_users=150, weeks=6)
     ev = s.interactions.copy()
     ev.loc[ev.index % 9 == 4, "event_type"] = "impression"
+    ev.loc[ev.ts.idxmax(), "event_type"] = "impression"  # the latest event is one event_types drops
     return ev, Taxonomy.from_categories(s.items)
 
 
