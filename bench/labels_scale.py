@@ -33,7 +33,7 @@ def main() -> None:
     ap.add_argument("--memory-limit", default="2GB")
     ap.add_argument("--workdir", default=None, help="where the data goes (needs ~25 bytes per row)")
     ap.add_argument("--activity", choices=["zipf", "lognormal"], default="zipf")
-    ap.add_argument("--bucket-rows", type=int, default=10_000_000)
+    ap.add_argument("--bucket-rows", type=int, default=2_500_000)
     args = ap.parse_args()
     root = Path(args.workdir or tempfile.mkdtemp(prefix="labeler-scale-"))
     exe = Path(sys.executable).parent / "labeler"

@@ -162,7 +162,7 @@ class EngineConfig(_Strict):
     memory_limit: str = "4GB"
     temp_dir: str | None = None
     threads: int | None = Field(None, ge=1)
-    bucket_rows: int | None = Field(10_000_000, ge=1, description="a run over more interactions than this is "
+    bucket_rows: int | None = Field(2_500_000, ge=1, description="a run over more interactions than this is "
                                     "labelled in pieces of users of about this many interactions (None: one piece)")
     # Spark only (also read from the environment: SPARK_MASTER)
     spark_master: str | None = Field(None, description="e.g. 'local[4]', 'spark://host:7077', 'yarn'; "

@@ -13,6 +13,7 @@ import logging
 import os
 import shutil
 import uuid
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import Any, NamedTuple
 
@@ -543,8 +544,7 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
         bar.set_postfix_str(f"{users_done:,} of {raw.num_rows:,} users, piece {k + 1}/{len(ranges)}")
         bar.update(piece_rows)
     bar.close()
-    _join_label_pieces(tmp / "pieces", tmp / "labels", len(ranges))
-    fp_rows = join_pieces(fp_files, tmp / "footprints.parquet", FOOTPRINTS_SCHEMA)
+    fp_rows = _join_all_pieces(tmp / "pieces", tmp, len(ranges), fp_files)
     shutil.rmtree(tmp / "pieces")
     counts = {}
     for p in parts:
@@ -561,14 +561,22 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
     return n, fp_rows, summary, (history, as_of_us)
 
 
-def _join_label_pieces(pieces: Path, root: Path, count: int) -> None:
-    """Each date's file: the pieces' files of that date, in piece order."""
+def _join_all_pieces(pieces: Path, tmp: Path, count: int, fp_files: list[Path]) -> int:
+    """Each date's label file and the footprints: the pieces' files in piece order, joined on as
+    many threads as there are cores (Arrow encodes one file on one thread, without the GIL; the
+    footprints, the largest file, first). Returns the footprint rows."""
     dates = sorted({p.name for k in range(count) for p in (pieces / f"{k:06d}").glob("date=*")})
-    root.mkdir(parents=True)
-    for date in dates:
-        files = [pieces / f"{k:06d}" / date / "part-0.arrow" for k in range(count)]
-        (root / date).mkdir()
-        join_pieces([f for f in files if f.exists()], root / date / "part-0.parquet", LABELS_SCHEMA)
+    (tmp / "labels").mkdir(parents=True)
+    with ThreadPoolExecutor(max_workers=os.cpu_count() or 1) as pool:
+        fp = pool.submit(join_pieces, fp_files, tmp / "footprints.parquet", FOOTPRINTS_SCHEMA)
+        jobs = []
+        for date in dates:
+            files = [pieces / f"{k:06d}" / date / "part-0.arrow" for k in range(count)]
+            jobs.append(pool.submit(join_pieces, [f for f in files if f.exists()],
+                                    tmp / "labels" / date / "part-0.parquet", LABELS_SCHEMA))
+        for job in jobs:
+            job.result()
+        return fp.result()
 
 
 def join_pieces(files: list[Path], dest: Path, schema: pa.Schema) -> int:
@@ -621,7 +629,7 @@ def _write_partitioned(run: LabelRun, root: Path, writer=None) -> int:
     """Stream labels sorted by (date, user, ts, ...) into one Parquet file per UTC date.
 
     Row groups have a fixed size whatever the engine's batch sizes, so the bytes are repeatable.
-    ``writer=ScratchWriter``: a piece's files, for ``_join_label_pieces``.
+    ``writer=ScratchWriter``: a piece's files, for ``_join_all_pieces``.
     """
     writer = writer or RowGroupWriter
     name = "part-0" + getattr(writer, "suffix", ".parquet")

@@ -14,6 +14,7 @@ import logging
 import os
 import shutil
 import uuid
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -179,13 +180,15 @@ class GenerationWriter:
         users, in id order, each written from nothing. Each file is the pieces' files concatenated
         in that order, in the same row groups: the bytes one generation of all users would have."""
         dates = sorted({d for w in pieces for d in w.dates_written})
-        for date in dates:
-            join_pieces([part_path(w.gen, date) for w in pieces if date in w.dates_written],
-                        part_path(self.gen, date), LABELS_SCHEMA)
-        self.footprint_rows = join_pieces([w.gen / "footprints.parquet" for w in pieces],
-                                          self.gen / "footprints.parquet", FOOTPRINTS_SCHEMA)
-        self.user_rows = join_pieces([w.gen / "users.parquet" for w in pieces], self.gen / "users.parquet",
-                                     USERS_SCHEMA)
+        with ThreadPoolExecutor(max_workers=os.cpu_count() or 1) as pool:  # one file a thread, largest first
+            fp = pool.submit(join_pieces, [w.gen / "footprints.parquet" for w in pieces],
+                             self.gen / "footprints.parquet", FOOTPRINTS_SCHEMA)
+            users = pool.submit(join_pieces, [w.gen / "users.parquet" for w in pieces], self.gen / "users.parquet",
+                                USERS_SCHEMA)
+            for job in [pool.submit(join_pieces, [part_path(w.gen, date) for w in pieces if date in w.dates_written],
+                                    part_path(self.gen, date), LABELS_SCHEMA) for date in dates]:
+                job.result()
+            self.footprint_rows, self.user_rows = fp.result(), users.result()
         for w in pieces:
             for key, n in w.counts.items():
                 self.counts[key] = self.counts.get(key, 0) + n
