@@ -56,6 +56,9 @@ ROW_GROUP = 262_144
 # footprints file of 8.3M rows: written in half the time and read in a quarter of it of
 # pyarrow's defaults (Snappy, every column in a dictionary), and 3% smaller.
 FEW_VALUES = ("level", "topic_id", "label", "taxonomy_version", "labels_version")
+# pieces' files are joined one output file a thread (Arrow encodes a file on one thread, without
+# the GIL); each thread holds up to a row group, so their number is capped
+JOIN_THREADS = min(4, os.cpu_count() or 1)
 
 
 def parquet_options(schema: pa.Schema) -> dict:
@@ -562,12 +565,11 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
 
 
 def _join_all_pieces(pieces: Path, tmp: Path, count: int, fp_files: list[Path]) -> int:
-    """Each date's label file and the footprints: the pieces' files in piece order, joined on as
-    many threads as there are cores (Arrow encodes one file on one thread, without the GIL; the
-    footprints, the largest file, first). Returns the footprint rows."""
+    """Each date's label file and the footprints: the pieces' files in piece order, joined on
+    JOIN_THREADS threads (the footprints, the largest file, first). Returns the footprint rows."""
     dates = sorted({p.name for k in range(count) for p in (pieces / f"{k:06d}").glob("date=*")})
     (tmp / "labels").mkdir(parents=True)
-    with ThreadPoolExecutor(max_workers=os.cpu_count() or 1) as pool:
+    with ThreadPoolExecutor(max_workers=JOIN_THREADS) as pool:
         fp = pool.submit(join_pieces, fp_files, tmp / "footprints.parquet", FOOTPRINTS_SCHEMA)
         jobs = []
         for date in dates:

@@ -22,7 +22,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from ..labelling import FOOTPRINTS_SCHEMA, LABELS_SCHEMA, ROW_GROUP, RowGroupWriter, join_pieces, parquet_options
+from ..labelling import (FOOTPRINTS_SCHEMA, JOIN_THREADS, LABELS_SCHEMA, ROW_GROUP, RowGroupWriter, join_pieces,
+                         parquet_options)
 from . import failpoints
 
 log = logging.getLogger(__name__)
@@ -180,7 +181,7 @@ class GenerationWriter:
         users, in id order, each written from nothing. Each file is the pieces' files concatenated
         in that order, in the same row groups: the bytes one generation of all users would have."""
         dates = sorted({d for w in pieces for d in w.dates_written})
-        with ThreadPoolExecutor(max_workers=os.cpu_count() or 1) as pool:  # one file a thread, largest first
+        with ThreadPoolExecutor(max_workers=JOIN_THREADS) as pool:  # one file a thread, largest first
             fp = pool.submit(join_pieces, [w.gen / "footprints.parquet" for w in pieces],
                              self.gen / "footprints.parquet", FOOTPRINTS_SCHEMA)
             users = pool.submit(join_pieces, [w.gen / "users.parquet" for w in pieces], self.gen / "users.parquet",
