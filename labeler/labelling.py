@@ -70,6 +70,8 @@ class RowGroupWriter:
     of a file do not depend on the batch sizes that fed it (an empty file gets the one empty row
     group ``pq.write_table`` gives it)."""
 
+    suffix = ".parquet"
+
     def __init__(self, dest: Path, schema: pa.Schema):
         self.writer = pq.ParquetWriter(dest, schema, **parquet_options(schema))
         self.schema, self.pending, self.buffered, self.rows = schema, [], 0, 0
@@ -565,20 +567,25 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
 
 
 def _join_all_pieces(pieces: Path, tmp: Path, count: int, fp_files: list[Path]) -> int:
-    """Each date's label file and the footprints: the pieces' files in piece order, joined on
-    JOIN_THREADS threads (the footprints, the largest file, first). Returns the footprint rows."""
+    """Each date's label file and the footprints: the pieces' files in piece order (the
+    footprints, the largest file, first). Returns the footprint rows."""
     dates = sorted({p.name for k in range(count) for p in (pieces / f"{k:06d}").glob("date=*")})
     (tmp / "labels").mkdir(parents=True)
+    name = "part-0" + ScratchWriter.suffix
+    label_files = [[f for f in (pieces / f"{k:06d}" / date / name for k in range(count)) if f.exists()]
+                   for date in dates]
+    rows = join_all([(fp_files, tmp / "footprints.parquet", FOOTPRINTS_SCHEMA)]
+                    + [(files, tmp / "labels" / date / "part-0.parquet", LABELS_SCHEMA)
+                       for date, files in zip(dates, label_files)])
+    return rows[0]
+
+
+def join_all(joins: list[tuple[list[Path], Path, pa.Schema]]) -> list[int]:
+    """``join_pieces(files, dest, schema)`` for each of ``joins``, one output file a thread on
+    JOIN_THREADS threads (Arrow encodes a file on one thread, without the GIL: put the largest
+    first). Returns the rows of each, in order."""
     with ThreadPoolExecutor(max_workers=JOIN_THREADS) as pool:
-        fp = pool.submit(join_pieces, fp_files, tmp / "footprints.parquet", FOOTPRINTS_SCHEMA)
-        jobs = []
-        for date in dates:
-            files = [pieces / f"{k:06d}" / date / "part-0.arrow" for k in range(count)]
-            jobs.append(pool.submit(join_pieces, [f for f in files if f.exists()],
-                                    tmp / "labels" / date / "part-0.parquet", LABELS_SCHEMA))
-        for job in jobs:
-            job.result()
-        return fp.result()
+        return list(pool.map(lambda job: join_pieces(*job), joins))
 
 
 def join_pieces(files: list[Path], dest: Path, schema: pa.Schema) -> int:
@@ -634,7 +641,7 @@ def _write_partitioned(run: LabelRun, root: Path, writer=None) -> int:
     ``writer=ScratchWriter``: a piece's files, for ``_join_all_pieces``.
     """
     writer = writer or RowGroupWriter
-    name = "part-0" + getattr(writer, "suffix", ".parquet")
+    name = "part-0" + writer.suffix
     t = run.labels.mutate(date=run.labels.ts.date().cast("string"))
     t = t.order_by([t.date] + [ibis.asc(t[k], nulls_first=False) for k in SORT_KEYS])
     root.mkdir(parents=True)

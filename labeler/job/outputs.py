@@ -14,7 +14,6 @@ import logging
 import os
 import shutil
 import uuid
-from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -22,8 +21,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from ..labelling import (FOOTPRINTS_SCHEMA, JOIN_THREADS, LABELS_SCHEMA, ROW_GROUP, RowGroupWriter, join_pieces,
-                         parquet_options)
+from ..labelling import FOOTPRINTS_SCHEMA, LABELS_SCHEMA, ROW_GROUP, RowGroupWriter, join_all, parquet_options
 from . import failpoints
 
 log = logging.getLogger(__name__)
@@ -181,15 +179,12 @@ class GenerationWriter:
         users, in id order, each written from nothing. Each file is the pieces' files concatenated
         in that order, in the same row groups: the bytes one generation of all users would have."""
         dates = sorted({d for w in pieces for d in w.dates_written})
-        with ThreadPoolExecutor(max_workers=JOIN_THREADS) as pool:  # one file a thread, largest first
-            fp = pool.submit(join_pieces, [w.gen / "footprints.parquet" for w in pieces],
-                             self.gen / "footprints.parquet", FOOTPRINTS_SCHEMA)
-            users = pool.submit(join_pieces, [w.gen / "users.parquet" for w in pieces], self.gen / "users.parquet",
-                                USERS_SCHEMA)
-            for job in [pool.submit(join_pieces, [part_path(w.gen, date) for w in pieces if date in w.dates_written],
-                                    part_path(self.gen, date), LABELS_SCHEMA) for date in dates]:
-                job.result()
-            self.footprint_rows, self.user_rows = fp.result(), users.result()
+        rows = join_all([([w.gen / "footprints.parquet" for w in pieces], self.gen / "footprints.parquet",
+                          FOOTPRINTS_SCHEMA),
+                         ([w.gen / "users.parquet" for w in pieces], self.gen / "users.parquet", USERS_SCHEMA)]
+                        + [([part_path(w.gen, date) for w in pieces if date in w.dates_written],
+                            part_path(self.gen, date), LABELS_SCHEMA) for date in dates])
+        self.footprint_rows, self.user_rows = rows[0], rows[1]
         for w in pieces:
             for key, n in w.counts.items():
                 self.counts[key] = self.counts.get(key, 0) + n
