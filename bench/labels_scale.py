@@ -10,7 +10,10 @@ the events), the realistic case; the default Zipf draw puts about a quarter of a
 ``--bucket-rows`` sets engine.bucket_rows (full runs over more interactions go in pieces of users).
 
     .venv/bin/python bench/labels_scale.py [--sizes 1000000 10000000 100000000] [--memory-limit 2GB]
-        [--activity lognormal] [--bucket-rows 10000000]
+        [--activity lognormal] [--bucket-rows 10000000] [--workdir DIR --keep-data]
+
+``--keep-data`` keeps each size's synthetic log in ``--workdir`` and reuses one found there (a log
+of a billion rows takes about as long to write as to label).
 """
 from __future__ import annotations
 
@@ -34,6 +37,7 @@ def main() -> None:
     ap.add_argument("--workdir", default=None, help="where the data goes (needs ~25 bytes per row)")
     ap.add_argument("--activity", choices=["zipf", "lognormal"], default="zipf")
     ap.add_argument("--bucket-rows", type=int, default=2_500_000)
+    ap.add_argument("--keep-data", action="store_true", help="keep (and reuse) the synthetic logs in --workdir")
     args = ap.parse_args()
     root = Path(args.workdir or tempfile.mkdtemp(prefix="labeler-scale-"))
     exe = Path(sys.executable).parent / "labeler"
@@ -41,8 +45,11 @@ def main() -> None:
     for n in args.sizes:
         d = root / f"n{n}"
         d.mkdir(parents=True, exist_ok=True)
-        tax = synthesize(d / "interactions.parquet", n, max(20_000, n // 50), activity=args.activity)
-        tax.save(d / "tax")
+        if not (args.keep_data and (d / "tax").exists()):
+            t0 = time.perf_counter()
+            tax = synthesize(d / "interactions.parquet", n, max(20_000, n // 50), activity=args.activity)
+            tax.save(d / "tax")
+            print(f"{n:>12,} interactions written in {time.perf_counter() - t0:.1f}s", flush=True)
         (d / "job.toml").write_text(f'[engine]\nmemory_limit = "{args.memory_limit}"\ntemp_dir = "{d / "spill"}"\n'
                                     f'bucket_rows = {args.bucket_rows}\n')
         before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
@@ -56,8 +63,12 @@ def main() -> None:
         print(f"{n:>12,} interactions ({args.activity}): {secs:7.1f}s (x{secs / base:.1f} the {args.sizes[0]:,} run, "
               f"{secs / base / (n / args.sizes[0]):.2f} of linear), "
               f"peak RSS of the child {peak:.2f} GiB (memory_limit {args.memory_limit})", flush=True)
-        shutil.rmtree(d, ignore_errors=True)
-    shutil.rmtree(root, ignore_errors=True)
+        shutil.rmtree(d / "out", ignore_errors=True)
+        shutil.rmtree(d / "spill", ignore_errors=True)
+        if not args.keep_data:
+            shutil.rmtree(d, ignore_errors=True)
+    if not args.keep_data:
+        shutil.rmtree(root, ignore_errors=True)
 
 
 if __name__ == "__main__":

@@ -26,6 +26,7 @@ import pyarrow.parquet as pq
 from . import __version__
 from .config import InputConfig, LabelConfig
 from .engines import Engine, make_engine, sums_digest
+from .errors import EngineError
 from .intake import Staged, interactions_table, item_topics_table
 from .intake import _COLUMNS as _INPUT_COLUMNS
 from .labels import carried_rows, continue_history, continued_history, each_interaction_once, footprint_rows, \
@@ -51,6 +52,7 @@ FOOTPRINTS_SCHEMA = pa.schema([
     ("recent_us", pa.list_(pa.int64()))])
 SORT_KEYS = ("user_id", "ts_us", "event_id", "item_id", "level")
 ROW_GROUP = 262_144
+DAY_US = 86_400_000_000
 # how every output table is encoded: LZ4 (raw) pages, dictionaries only for the columns of few
 # distinct values (a dictionary of user or item ids costs time and saves nothing). Measured on a
 # footprints file of 8.3M rows: written in half the time and read in a quarter of it of
@@ -70,11 +72,10 @@ class RowGroupWriter:
     of a file do not depend on the batch sizes that fed it (an empty file gets the one empty row
     group ``pq.write_table`` gives it)."""
 
-    suffix = ".parquet"
-
     def __init__(self, dest: Path, schema: pa.Schema):
         self.writer = pq.ParquetWriter(dest, schema, **parquet_options(schema))
         self.schema, self.pending, self.buffered, self.rows = schema, [], 0, 0
+        self.parked: list[Path] = []  # earlier rows not yet written, on disk (before ``pending``)
 
     def add(self, table: pa.Table) -> None:
         if table.num_rows == 0:
@@ -83,44 +84,94 @@ class RowGroupWriter:
         self.buffered += table.num_rows
         self.rows += table.num_rows
         if self.buffered >= ROW_GROUP:
-            whole = pa.concat_tables(self.pending)
+            whole = pa.concat_tables(self._unpark() + self.pending)
             full = (whole.num_rows // ROW_GROUP) * ROW_GROUP
             self.writer.write_table(whole.slice(0, full), row_group_size=ROW_GROUP)
             rest = whole.slice(full)
             self.pending, self.buffered = ([rest] if rest.num_rows else []), rest.num_rows
 
+    def park(self, dest: Path) -> None:
+        """Move the rows held in memory, not yet written, into ``dest`` (an Arrow IPC file, LZ4); they
+        are read back when a row group fills, or at ``close``."""
+        if self.pending:
+            with pa.ipc.new_file(dest, self.schema, options=pa.ipc.IpcWriteOptions(compression="lz4")) as out:
+                for table in self.pending:
+                    out.write_table(table)
+            self.parked.append(dest)
+            self.pending = []
+
+    def _unpark(self) -> list[pa.Table]:
+        tables = []
+        for path in self.parked:
+            with pa.OSFile(str(path), "rb") as source:
+                tables.append(pa.ipc.open_file(source).read_all())
+            path.unlink()
+        self.parked = []
+        return tables
+
     def close(self) -> None:
+        self.pending = self._unpark() + self.pending
         if self.pending or self.rows == 0:
             self.writer.write_table(pa.concat_tables(self.pending) if self.pending else self.schema.empty_table(),
                                     row_group_size=ROW_GROUP)
+        self.pending = []  # a file is closed while others stay open: hold none of its rows
         self.writer.close()
 
 
-class ScratchWriter:
-    """Writes a piece's rows for a later join (``join_pieces``) as an Arrow IPC file, LZ4 frames:
-    the join re-encodes every row anyway, so the piece need not be Parquet: encoding each row twice
-    and decoding it once was most of what pieces cost over one pass."""
+class DateFiles:
+    """One labels file per UTC date under ``root``, fed in date order.
 
-    suffix = ".arrow"
+    Without ``parked`` (one pass) a date's file is closed when the next date starts. With it (a
+    run in pieces) every date's file stays open until :meth:`close`, so each piece appends its
+    rows of a date after the earlier pieces' rows of it, and the files are the pieces' rows in
+    piece order, cut into the same row groups as one pass: the same bytes, written as the pieces
+    go, with no scratch copy of the labels and no join at the end. Between pieces a date's
+    unwritten remainder (less than a row group) waits in a file in ``parked``, not in memory.
+    """
 
-    def __init__(self, dest: Path, schema: pa.Schema):
-        self.writer = pa.ipc.new_file(dest, schema, options=pa.ipc.IpcWriteOptions(compression="lz4"))
-        self.schema, self.rows = schema, 0
+    name = "part-0.parquet"
 
-    def add(self, table: pa.Table) -> None:
-        if table.num_rows:
-            self.writer.write_table(table.cast(self.schema))
-            self.rows += table.num_rows
+    def __init__(self, root: Path, parked: Path | None = None):
+        self.root, self.parked = root, parked
+        self.files: dict[str, RowGroupWriter] = {}
+        self.current: str | None = None
+        self.pieces = 0
+        root.mkdir(parents=True, exist_ok=True)
+        if parked is not None:
+            parked.mkdir(parents=True, exist_ok=True)
+
+    def add(self, date: str, table: pa.Table) -> None:
+        if date != self.current:
+            self._leave()
+            if date not in self.files:
+                (self.root / f"date={date}").mkdir()
+                self.files[date] = RowGroupWriter(self.root / f"date={date}" / self.name, LABELS_SCHEMA)
+            self.current = date
+        self.files[date].add(table)
+
+    def _leave(self) -> None:
+        """Done with the current date for now: closed (one pass) or its remainder parked (pieces)."""
+        if self.current is None:
+            return
+        out = self.files[self.current]
+        if self.parked is None:
+            out.close()
+            del self.files[self.current]
+        else:
+            out.park(self.parked / f"{self.current}.{self.pieces:06d}.arrow")
+        self.current = None
+
+    def end_piece(self) -> None:
+        self._leave()
+        self.pieces += 1
 
     def close(self) -> None:
-        self.writer.close()
-
-
-def write_scratch(table: pa.Table, dest: Path) -> None:
-    """One table as a scratch file for ``join_pieces``."""
-    out = ScratchWriter(dest, table.schema)
-    out.add(table)
-    out.close()
+        """Write every open file's rest and close it, one file a thread on JOIN_THREADS threads
+        (when dates hold less than a row group, the whole run's labels are encoded here)."""
+        self._leave()
+        files, self.files = list(self.files.values()), {}
+        with ThreadPoolExecutor(max_workers=JOIN_THREADS) as pool:
+            list(pool.map(RowGroupWriter.close, files))
 
 
 @dataclasses.dataclass
@@ -470,6 +521,25 @@ class LabelRun:
         return n, fp_rows, summary, history
 
 
+def allow_open_files(dates: int, rows: int) -> None:
+    """Let this process keep a labels file open per date (a run in pieces does): the soft limit on
+    open files is raised toward the hard one; past the hard one, a clear error."""
+    try:
+        import resource
+    except ImportError:  # not a POSIX system: nothing to raise
+        return
+    need = dates + 256  # the engine's own files beside them
+    soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
+    if soft == resource.RLIM_INFINITY or soft >= need:
+        return
+    if hard != resource.RLIM_INFINITY and hard < need:
+        raise EngineError(
+            f"a run in pieces keeps one labels file open per date, and these {rows:,} interactions span "
+            f"{dates:,} dates while this process may open at most {hard:,} files: raise the open-file limit "
+            f"(ulimit -n {need}) or set [engine] bucket_rows above {rows:,} to label in one pass")
+    resource.setrlimit(resource.RLIMIT_NOFILE, (need if hard == resource.RLIM_INFINITY else hard, hard))
+
+
 class Piece(NamedTuple):
     """A range [lo, hi) of user ids (None: open), with its interactions and users."""
 
@@ -507,7 +577,8 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
     # the latest kept event: the collapse of duplicates keeps their time, so without max_user_events
     # (which counts collapsed rows) it comes with the pieces' row counts, in one pass
     kept = None if cfg.event_types is None else ev.event_type.isin(list(cfg.event_types))
-    raw = eng.to_arrow(ev.group_by("user_id").aggregate(n=ev.count(), mx=ev.ts_us.max(where=kept)))
+    raw = eng.to_arrow(ev.group_by("user_id").aggregate(n=ev.count(), mx=ev.ts_us.max(where=kept),
+                                                          mn=ev.ts_us.min()))
     if run.as_of is not None:
         as_of_us = run.as_of_us
     elif cfg.max_user_events is None:
@@ -523,7 +594,13 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
              len(ranges), limit)
     n = 0
     sums = [0, 0, 0]
-    parts, histories, fp_files = [], [], []
+    parts, histories = [], []
+    # every date's file and the footprints stay open while the pieces append to them in order
+    if raw.num_rows:
+        days = (pc.max(raw.column("mx")).as_py() or 0) // DAY_US - pc.min(raw.column("mn")).as_py() // DAY_US
+        allow_open_files(max(days, 0) + 1, run.intake.rows_in)
+    dates = DateFiles(tmp / "labels", parked=tmp / "parked")
+    footprints = RowGroupWriter(tmp / "footprints.parquet", FOOTPRINTS_SCHEMA)
     from tqdm import tqdm
     bar = tqdm(total=run.intake.rows_in, unit=" interactions", unit_scale=True, disable=not progress,
                desc="labelling in pieces")
@@ -536,9 +613,8 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
                         content_hash=run.intake.content_hash)
         sub = plan_labels(staged, run.taxonomy, cfg, engine=eng, as_of=as_of).materialize()
         sub.labels_version = run.labels_version
-        n += _write_partitioned(sub, tmp / "pieces" / f"{k:06d}", ScratchWriter)
-        fp_files.append(tmp / "pieces" / f"fp-{k:06d}.arrow")
-        write_scratch(sub.footprints_arrow(), fp_files[-1])
+        n += _write_partitioned(sub, tmp / "labels", dates)
+        footprints.add(sub.footprints_arrow())
         histories.append(sub.history_arrow())
         parts.append(sub.summary_parts())
         sums = [x + y for x, y in zip(sums, eng.content_sums(sub.labels, _CANON_COLUMNS))]
@@ -549,8 +625,10 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
         bar.set_postfix_str(f"{users_done:,} of {raw.num_rows:,} users, piece {k + 1}/{len(ranges)}")
         bar.update(piece_rows)
     bar.close()
-    fp_rows = _join_all_pieces(tmp / "pieces", tmp, len(ranges), fp_files)
-    shutil.rmtree(tmp / "pieces")
+    dates.close()
+    footprints.close()
+    fp_rows = footprints.rows
+    shutil.rmtree(tmp / "parked")
     counts = {}
     for p in parts:
         for key, v in p["counts"].items():
@@ -566,20 +644,6 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
     return n, fp_rows, summary, (history, as_of_us)
 
 
-def _join_all_pieces(pieces: Path, tmp: Path, count: int, fp_files: list[Path]) -> int:
-    """Each date's label file and the footprints: the pieces' files in piece order (the
-    footprints, the largest file, first). Returns the footprint rows."""
-    dates = sorted({p.name for k in range(count) for p in (pieces / f"{k:06d}").glob("date=*")})
-    (tmp / "labels").mkdir(parents=True)
-    name = "part-0" + ScratchWriter.suffix
-    label_files = [[f for f in (pieces / f"{k:06d}" / date / name for k in range(count)) if f.exists()]
-                   for date in dates]
-    rows = join_all([(fp_files, tmp / "footprints.parquet", FOOTPRINTS_SCHEMA)]
-                    + [(files, tmp / "labels" / date / "part-0.parquet", LABELS_SCHEMA)
-                       for date, files in zip(dates, label_files)])
-    return rows[0]
-
-
 def join_all(joins: list[tuple[list[Path], Path, pa.Schema]]) -> list[int]:
     """``join_pieces(files, dest, schema)`` for each of ``joins``, one output file a thread on
     JOIN_THREADS threads (Arrow encodes a file on one thread, without the GIL: put the largest
@@ -589,17 +653,10 @@ def join_all(joins: list[tuple[list[Path], Path, pa.Schema]]) -> list[int]:
 
 
 def join_pieces(files: list[Path], dest: Path, schema: pa.Schema) -> int:
-    """Concatenate Parquet files (or ScratchWriter's .arrow files) into ``dest`` in ROW_GROUP-row
-    groups, streaming. Returns the rows."""
+    """Concatenate Parquet files into ``dest`` in ROW_GROUP-row groups, streaming. Returns the rows."""
     dest.parent.mkdir(parents=True, exist_ok=True)
     out = RowGroupWriter(dest, schema)
     for f in files:
-        if Path(f).suffix == ScratchWriter.suffix:
-            with pa.memory_map(str(f)) as source:
-                reader = pa.ipc.open_file(source)
-                for i in range(reader.num_record_batches):
-                    out.add(pa.Table.from_batches([reader.get_batch(i)]))
-            continue
         pf = pq.ParquetFile(f)
         for i in range(pf.num_row_groups):
             out.add(pf.read_row_group(i))
@@ -634,33 +691,27 @@ def _finish_footprints(t: pa.Table) -> pa.Table:
     return t.select([*FOOTPRINTS_COLUMNS, "history_len", "recent_us"]).cast(FOOTPRINTS_SCHEMA)
 
 
-def _write_partitioned(run: LabelRun, root: Path, writer=None) -> int:
+def _write_partitioned(run: LabelRun, root: Path, files: DateFiles | None = None) -> int:
     """Stream labels sorted by (date, user, ts, ...) into one Parquet file per UTC date.
 
     Row groups have a fixed size whatever the engine's batch sizes, so the bytes are repeatable.
-    ``writer=ScratchWriter``: a piece's files, for ``_join_all_pieces``.
+    ``files``: a run in pieces' open date files (this piece's rows are appended to them).
     """
-    writer = writer or RowGroupWriter
-    name = "part-0" + writer.suffix
     t = run.labels.mutate(date=run.labels.ts.date().cast("string"))
     t = t.order_by([t.date] + [ibis.asc(t[k], nulls_first=False) for k in SORT_KEYS])
-    root.mkdir(parents=True)
-    total, out, current = 0, None, None
+    out = files or DateFiles(root)
+    total = 0
     for batch in run.engine.to_batches(t):
         dates = batch.column(batch.schema.get_field_index("date"))
         for date in pc.unique(dates).to_pylist():
             part = pa.Table.from_batches([batch.filter(pc.equal(dates, date))]).drop_columns(
                 ["date", "ts_us"])
-            if date != current:
-                if out is not None:
-                    out.close()
-                (root / f"date={date}").mkdir()
-                out = writer(root / f"date={date}" / name, LABELS_SCHEMA)
-                current = date
-            out.add(_finish_labels(part, run.taxonomy_version, run.labels_version))
+            out.add(date, _finish_labels(part, run.taxonomy_version, run.labels_version))
             total += part.num_rows
-    if out is not None:
+    if files is None:
         out.close()
+    else:
+        out.end_piece()
     return total
 
 

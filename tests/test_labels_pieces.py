@@ -58,6 +58,41 @@ def test_pieces_write_the_bytes_of_one_pass(tmp_path, scenario, name):
                                   check_dtype=False)
 
 
+def test_pieces_cut_row_groups_across_pieces(tmp_path, scenario, monkeypatch):
+    """With row groups smaller than a piece's rows of a date, a date's row groups span pieces: the
+    remainder each piece leaves is parked on disk and taken up by the next piece, and the files are
+    still a single pass's, byte for byte (several row groups a file), with nothing parked left over."""
+    import pyarrow.parquet as pq
+
+    from labeler import labelling
+    monkeypatch.setattr(labelling, "ROW_GROUP", 37)
+    ev, tax = scenario
+    plan_labels(ev, tax, engine=make_engine(EngineConfig(bucket_rows=None))).write(tmp_path / "one")
+    plan_labels(ev, tax, engine=make_engine(EngineConfig(bucket_rows=300))).write(tmp_path / "many")
+    files = _files(tmp_path / "many")
+    assert files == _files(tmp_path / "one")
+    groups = [pq.ParquetFile(tmp_path / "many" / name).num_row_groups for name in files]
+    assert max(groups) > 2
+    assert sorted(p.name for p in (tmp_path / "many").iterdir()) == ["footprints.parquet", "labels", "summary.json"]
+
+
+def test_many_dates_beyond_the_open_file_limit_say_what_to_do(monkeypatch):
+    """A run in pieces keeps a file open per date: past the hard limit on open files it stops with
+    what to change, and under it the soft limit is raised."""
+    import resource
+
+    from labeler.errors import EngineError
+    from labeler.labelling import allow_open_files
+    soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
+    monkeypatch.setattr(resource, "getrlimit", lambda _: (100, 1000))
+    raised = []
+    monkeypatch.setattr(resource, "setrlimit", lambda _, limits: raised.append(limits))
+    allow_open_files(500, 10)
+    assert raised == [(1000, 1000)]
+    with pytest.raises(EngineError, match="ulimit -n 5256.*bucket_rows above 123"):
+        allow_open_files(5000, 123)
+
+
 def test_cli_label_in_pieces_publishes_the_same_store(cli, fixtures, tmp_path):
     """`labeler label --store` after a run in pieces publishes a store that answers like one pass's."""
     from labeler import open_store
