@@ -164,6 +164,10 @@ class EngineConfig(_Strict):
     threads: int | None = Field(None, ge=1)
     bucket_rows: int | None = Field(2_500_000, ge=1, description="a run over more interactions than this is "
                                     "labelled in pieces of users of about this many interactions (None: one piece)")
+    output_compression: Literal["lz4", "zstd"] = Field(
+        "lz4", description="the labels and footprints files' Parquet codec: 'zstd' writes them about 40% "
+        "smaller and a quarter slower (measured: README, Benchmarks); a change applies to the files written "
+        "from then on")
     # Spark only (also read from the environment: SPARK_MASTER)
     spark_master: str | None = Field(None, description="e.g. 'local[4]', 'spark://host:7077', 'yarn'; "
                                      "default $SPARK_MASTER or local[*]")

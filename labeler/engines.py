@@ -253,7 +253,8 @@ class SparkEngine(Engine):
         order = [F.col("date").asc()] + [F.col(k).asc_nulls_last() for k in sort_keys]
         sdf = sdf.repartition("date").sortWithinPartitions(*order).persist()
         n = sdf.count()
-        sdf.select(*schema.names, "date").write.partitionBy("date").parquet(str(root))
+        codec = {"lz4": "lz4_raw", "zstd": "zstd"}[self.config.output_compression]  # Arrow's lz4 is LZ4_RAW
+        sdf.select(*schema.names, "date").write.option("compression", codec).partitionBy("date").parquet(str(root))
         sdf.unpersist()
         return n
 

@@ -18,6 +18,7 @@ from pathlib import Path
 from typing import Any, NamedTuple
 
 import ibis
+import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
@@ -63,8 +64,9 @@ FEW_VALUES = ("level", "topic_id", "label", "taxonomy_version", "labels_version"
 JOIN_THREADS = min(4, os.cpu_count() or 1)
 
 
-def parquet_options(schema: pa.Schema) -> dict:
-    return {"compression": "lz4", "use_dictionary": [n for n in schema.names if n in FEW_VALUES]}
+def parquet_options(schema: pa.Schema, compression: str = "lz4") -> dict:
+    """How an output table is encoded (``compression``: EngineConfig.output_compression)."""
+    return {"compression": compression, "use_dictionary": [n for n in schema.names if n in FEW_VALUES]}
 
 
 class RowGroupWriter:
@@ -72,8 +74,8 @@ class RowGroupWriter:
     of a file do not depend on the batch sizes that fed it (an empty file gets the one empty row
     group ``pq.write_table`` gives it)."""
 
-    def __init__(self, dest: Path, schema: pa.Schema):
-        self.writer = pq.ParquetWriter(dest, schema, **parquet_options(schema))
+    def __init__(self, dest: Path, schema: pa.Schema, compression: str = "lz4"):
+        self.writer = pq.ParquetWriter(dest, schema, **parquet_options(schema, compression))
         self.schema, self.pending, self.buffered, self.rows = schema, [], 0, 0
         self.parked: list[Path] = []  # earlier rows not yet written, on disk (before ``pending``)
 
@@ -131,8 +133,8 @@ class DateFiles:
 
     name = "part-0.parquet"
 
-    def __init__(self, root: Path, parked: Path | None = None):
-        self.root, self.parked = root, parked
+    def __init__(self, root: Path, parked: Path | None = None, compression: str = "lz4"):
+        self.root, self.parked, self.compression = root, parked, compression
         self.files: dict[str, RowGroupWriter] = {}
         self.current: str | None = None
         self.pieces = 0
@@ -145,7 +147,8 @@ class DateFiles:
             self._leave()
             if date not in self.files:
                 (self.root / f"date={date}").mkdir()
-                self.files[date] = RowGroupWriter(self.root / f"date={date}" / self.name, LABELS_SCHEMA)
+                self.files[date] = RowGroupWriter(self.root / f"date={date}" / self.name, LABELS_SCHEMA,
+                                                  self.compression)
             self.current = date
         self.files[date].add(table)
 
@@ -514,7 +517,8 @@ class LabelRun:
             else:
                 n = _write_partitioned(self, tmp / "labels")
             fp = self.footprints_arrow()
-            pq.write_table(fp, tmp / "footprints.parquet", row_group_size=ROW_GROUP, **parquet_options(fp.schema))
+            pq.write_table(fp, tmp / "footprints.parquet", row_group_size=ROW_GROUP,
+                           **parquet_options(fp.schema, _compression(self.engine)))
             fp_rows = fp.num_rows
             summary = self.summary()
             summary["outputs"] = {"labels_content_hash": self.content_hash()}
@@ -551,17 +555,20 @@ class Piece(NamedTuple):
 
 def user_pieces(counts: pa.Table, limit: int) -> list[Piece]:
     """Ranges of user ids, in id order, each holding about ``limit`` interactions (a heavier user
-    is a range of its own). ``counts``: user_id, n."""
+    is a range of its own). ``counts``: user_id, n.
+
+    Greedy: a range takes the next user while it stays within ``limit`` (and always takes one);
+    found by binary search over the running total, so tens of millions of users cost a search per
+    range, not Python work per user."""
     counts = counts.take(pc.sort_indices(counts, [("user_id", "ascending")]))
-    ids, ns = counts.column("user_id").to_pylist(), counts.column("n").to_pylist()
-    pieces, lo, held, users = [], None, 0, 0
-    for user, n in zip(ids, ns):
-        if held and held + n > limit:
-            pieces.append(Piece(lo, user, held, users))
-            lo, held, users = user, 0, 0
-        held += n
-        users += 1
-    pieces.append(Piece(lo, None, held, users))
+    ids = counts.column("user_id")
+    total = np.concatenate([[0], np.cumsum(counts.column("n").to_numpy())])
+    pieces, i, users = [], 0, counts.num_rows
+    while i < users or not pieces:
+        j = max(int(np.searchsorted(total, total[i] + limit, side="right")) - 1, i + 1) if users else 0
+        pieces.append(Piece(ids[i].as_py() if i else None, ids[j].as_py() if j < users else None,
+                            int(total[j] - total[i]), j - i))
+        i = j
     return pieces
 
 
@@ -599,8 +606,8 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
     if raw.num_rows:
         days = (pc.max(raw.column("mx")).as_py() or 0) // DAY_US - pc.min(raw.column("mn")).as_py() // DAY_US
         allow_open_files(max(days, 0) + 1, run.intake.rows_in)
-    dates = DateFiles(tmp / "labels", parked=tmp / "parked")
-    footprints = RowGroupWriter(tmp / "footprints.parquet", FOOTPRINTS_SCHEMA)
+    dates = DateFiles(tmp / "labels", parked=tmp / "parked", compression=_compression(eng))
+    footprints = RowGroupWriter(tmp / "footprints.parquet", FOOTPRINTS_SCHEMA, _compression(eng))
     from tqdm import tqdm
     bar = tqdm(total=run.intake.rows_in, unit=" interactions", unit_scale=True, disable=not progress,
                desc="labelling in pieces")
@@ -644,18 +651,22 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
     return n, fp_rows, summary, (history, as_of_us)
 
 
-def join_all(joins: list[tuple[list[Path], Path, pa.Schema]]) -> list[int]:
+def _compression(engine: Engine) -> str:
+    return engine.config.output_compression
+
+
+def join_all(joins: list[tuple[list[Path], Path, pa.Schema]], compression: str = "lz4") -> list[int]:
     """``join_pieces(files, dest, schema)`` for each of ``joins``, one output file a thread on
     JOIN_THREADS threads (Arrow encodes a file on one thread, without the GIL: put the largest
     first). Returns the rows of each, in order."""
     with ThreadPoolExecutor(max_workers=JOIN_THREADS) as pool:
-        return list(pool.map(lambda job: join_pieces(*job), joins))
+        return list(pool.map(lambda job: join_pieces(*job, compression), joins))
 
 
-def join_pieces(files: list[Path], dest: Path, schema: pa.Schema) -> int:
+def join_pieces(files: list[Path], dest: Path, schema: pa.Schema, compression: str = "lz4") -> int:
     """Concatenate Parquet files into ``dest`` in ROW_GROUP-row groups, streaming. Returns the rows."""
     dest.parent.mkdir(parents=True, exist_ok=True)
-    out = RowGroupWriter(dest, schema)
+    out = RowGroupWriter(dest, schema, compression)
     for f in files:
         pf = pq.ParquetFile(f)
         for i in range(pf.num_row_groups):
@@ -699,7 +710,7 @@ def _write_partitioned(run: LabelRun, root: Path, files: DateFiles | None = None
     """
     t = run.labels.mutate(date=run.labels.ts.date().cast("string"))
     t = t.order_by([t.date] + [ibis.asc(t[k], nulls_first=False) for k in SORT_KEYS])
-    out = files or DateFiles(root)
+    out = files or DateFiles(root, compression=_compression(run.engine))
     total = 0
     for batch in run.engine.to_batches(t):
         dates = batch.column(batch.schema.get_field_index("date"))

@@ -165,6 +165,29 @@ def test_a_full_run_in_pieces_writes_the_bytes_of_one_pass(tmp_path, scenario, n
     assert_same_outputs(root / "work", root / "one")
 
 
+def test_zstd_outputs_keep_the_byte_promises(tmp_path, scenario):
+    """engine.output_compression = "zstd": a full run in pieces writes the bytes of one pass, daily
+    runs continue to the bytes of a full run, and the labels and footprints files are ZSTD-coded with
+    the rows of the default (LZ4) files."""
+    root, dates = setup_root(tmp_path, scenario, 25)
+    _, ev = scenario
+    zstd = {"output_compression": "zstd"}
+    pieces = make_config(root, engine={"bucket_rows": 700, **zstd})
+    run_job(pieces)
+    run_job(make_config(root, work="one", engine=zstd))
+    assert_same_outputs(root / "work", root / "one")
+    write_days(ev, root / "interactions", dates[25:27])
+    assert run_job(pieces).manifest["mode"] == "incremental"
+    run_job(make_config(root, work="full", engine=zstd))
+    run_job(make_config(root, work="lz4"))
+    assert_same_outputs(root / "work", root / "full")
+    ours, default = current_outputs(root / "work"), current_outputs(root / "lz4")
+    for name in ["footprints.parquet", *sorted(str(p.relative_to(ours)) for p in (ours / "labels").rglob("*.parquet"))[:3]]:
+        assert pq.ParquetFile(ours / name).metadata.row_group(0).column(0).compression == "ZSTD"
+        assert pq.ParquetFile(default / name).metadata.row_group(0).column(0).compression == "LZ4"
+        assert pq.read_table(ours / name).equals(pq.read_table(default / name)), name
+
+
 def assert_same_store_answers(a: Path, b: Path, ev: pd.DataFrame) -> None:
     """Every user's footprint and labels for a sample of items are the same in both jobs' stores."""
     from labeler import open_store

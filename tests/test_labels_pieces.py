@@ -58,6 +58,28 @@ def test_pieces_write_the_bytes_of_one_pass(tmp_path, scenario, name):
                                   check_dtype=False)
 
 
+def test_user_pieces_match_the_greedy_rule():
+    """The ranges found by binary search equal the plain greedy loop (a range takes the next user
+    while its interactions stay within the limit, and always takes one), on random counts."""
+    import numpy as np
+    rng = np.random.default_rng(3)
+    for _ in range(200):
+        n = int(rng.integers(0, 30))
+        ns = [int(x) for x in rng.integers(1, 12, n)]
+        ids = [f"u{k:03d}" for k in range(n)]
+        limit = int(rng.integers(1, 25))
+        expected, lo, held, users = [], None, 0, 0
+        for user, c in zip(ids, ns):
+            if held and held + c > limit:
+                expected.append((lo, user, held, users))
+                lo, held, users = user, 0, 0
+            held += c
+            users += 1
+        expected.append((lo, None, held, users))
+        got = user_pieces(pa.table({"user_id": pa.array(ids, pa.string()), "n": pa.array(ns, pa.int64())}), limit)
+        assert [tuple(p) for p in got] == expected
+
+
 def test_pieces_cut_row_groups_across_pieces(tmp_path, scenario, monkeypatch):
     """With row groups smaller than a piece's rows of a date, a date's row groups span pieces: the
     remainder each piece leaves is parked on disk and taken up by the next piece, and the files are
@@ -74,6 +96,21 @@ def test_pieces_cut_row_groups_across_pieces(tmp_path, scenario, monkeypatch):
     groups = [pq.ParquetFile(tmp_path / "many" / name).num_row_groups for name in files]
     assert max(groups) > 2
     assert sorted(p.name for p in (tmp_path / "many").iterdir()) == ["footprints.parquet", "labels", "summary.json"]
+
+
+def test_zstd_pieces_write_the_bytes_of_one_pass_and_the_rows_of_lz4(tmp_path, scenario):
+    """engine.output_compression = "zstd": pieces and one pass give the same bytes, every file is
+    ZSTD-coded, and the tables equal the default codec's."""
+    import pyarrow.parquet as pq
+    ev, tax = scenario
+    for name, conf in (("one", {"bucket_rows": None}), ("many", {"bucket_rows": 300}), ("lz4", {})):
+        conf = conf if name == "lz4" else {**conf, "output_compression": "zstd"}
+        plan_labels(ev, tax, engine=make_engine(EngineConfig(**conf))).write(tmp_path / name)
+    files = _files(tmp_path / "many")
+    assert files == _files(tmp_path / "one")
+    for name in files:
+        assert pq.ParquetFile(tmp_path / "many" / name).metadata.row_group(0).column(0).compression == "ZSTD"
+        assert pq.read_table(tmp_path / "many" / name).equals(pq.read_table(tmp_path / "lz4" / name)), name
 
 
 def test_many_dates_beyond_the_open_file_limit_say_what_to_do(monkeypatch):

@@ -47,10 +47,10 @@ def _atomic(dest: Path, point: str):
     os.replace(tmp, dest)
 
 
-def write_table(table: pa.Table, dest: Path, point: str) -> None:
+def write_table(table: pa.Table, dest: Path, point: str, compression: str = "lz4") -> None:
     """Write one Parquet file atomically (temp file, fsync, rename), fixed row groups."""
     with _atomic(dest, point) as tmp:
-        pq.write_table(table, tmp, row_group_size=ROW_GROUP, **parquet_options(table.schema))
+        pq.write_table(table, tmp, row_group_size=ROW_GROUP, **parquet_options(table.schema, compression))
 
 
 def _sorted(table: pa.Table, keys) -> pa.Table:
@@ -81,16 +81,17 @@ class GenerationWriter:
     """Builds generation ``gen`` from ``prev`` (or from nothing) and the re-labelled users' rows."""
 
     def __init__(self, gen: Path, prev: Path | None, users: pa.Array | None, start_date: str | None,
-                 versions, taxonomy_version: str, people: pa.Array | None = None):
+                 versions, taxonomy_version: str, people: pa.Array | None = None, compression: str = "lz4"):
         """``users``: whose label rows from ``start_date`` on are replaced (None: everyone's);
         ``people``: whose footprint and history rows are replaced (default: ``users``). Users
-        continued from carried state are among ``people`` only: their earlier rows stay."""
+        continued from carried state are among ``people`` only: their earlier rows stay.
+        ``compression``: the Parquet codec of the files written (EngineConfig.output_compression)."""
         if gen.exists():  # left by a run that crashed before committing: never committed, so rebuilt
             shutil.rmtree(gen)
         gen.mkdir(parents=True)
         self.gen, self.prev, self.users, self.start = gen, prev, users, start_date
         self.people = users if people is None else people
-        self.versions, self.taxonomy_version = versions, taxonomy_version
+        self.versions, self.taxonomy_version, self.compression = versions, taxonomy_version, compression
         self.counts: dict[tuple[int, str], int] = {}
         self.rows_written = 0
         self.dates_written: list[str] = []
@@ -111,8 +112,8 @@ class GenerationWriter:
 
     def write_date(self, date: str, new_rows: pa.Table | None) -> None:
         """Date ``date``: the previous rows of users not re-labelled, plus ``new_rows``."""
-        self._took(date, DateWriter(self.gen, self.prev, self.users, self.versions, self.taxonomy_version)(
-            date, new_rows))
+        self._took(date, DateWriter(self.gen, self.prev, self.users, self.versions, self.taxonomy_version,
+                                    compression=self.compression)(date, new_rows))
 
     def _took(self, date: str, done: dict) -> None:
         self._done.add(date)
@@ -127,7 +128,8 @@ class GenerationWriter:
     def write_stream(self, engine, expr) -> None:
         """Write the re-labelled rows of ``expr`` (with a string ``_date`` column), one date at a
         time, through ``engine.write_groups``: a distributed engine writes them from its workers."""
-        writer = DateWriter(self.gen, self.prev, self.users, self.versions, self.taxonomy_version, presorted=True)
+        writer = DateWriter(self.gen, self.prev, self.users, self.versions, self.taxonomy_version, presorted=True,
+                            compression=self.compression)
         for date, done in engine.write_groups(expr, "_date", writer, order=tuple(k for k, _, _ in LABEL_SORT)):
             self._took(date, done)
         self.dates_written.sort()
@@ -168,11 +170,11 @@ class GenerationWriter:
             whole, topped = self.people, aged
         self.footprint_rows = write_merged(self.prev / "footprints.parquet" if merge else None, whole, fp,
                                            topped, FOOTPRINTS_SCHEMA, self.gen / "footprints.parquet",
-                                           "write_footprints", FOOTPRINT_SORT)
+                                           "write_footprints", FOOTPRINT_SORT, self.compression)
         failpoints.hit("mid_footprints_write")
         self.user_rows = write_merged(self.prev / "users.parquet" if merge else None, self.people, us,
                                       lambda t: t, USERS_SCHEMA, self.gen / "users.parquet", "write_footprints",
-                                      [("user_id", "ascending", "at_end")])
+                                      [("user_id", "ascending", "at_end")], self.compression)
 
     def join(self, pieces: list["GenerationWriter"]) -> None:
         """Fill this (new, empty) generation with ``pieces``: generations of disjoint ranges of
@@ -183,7 +185,7 @@ class GenerationWriter:
                           FOOTPRINTS_SCHEMA),
                          ([w.gen / "users.parquet" for w in pieces], self.gen / "users.parquet", USERS_SCHEMA)]
                         + [([part_path(w.gen, date) for w in pieces if date in w.dates_written],
-                            part_path(self.gen, date), LABELS_SCHEMA) for date in dates])
+                            part_path(self.gen, date), LABELS_SCHEMA) for date in dates], self.compression)
         self.footprint_rows, self.user_rows = rows[0], rows[1]
         for w in pieces:
             for key, n in w.counts.items():
@@ -200,8 +202,8 @@ class DateWriter:
     here), so a date without previous rows is written as it comes."""
 
     def __init__(self, gen: Path, prev: Path | None, users: pa.Array | None, versions, taxonomy_version: str,
-                 presorted: bool = False):
-        self.gen, self.prev, self.users = gen, prev, users
+                 presorted: bool = False, compression: str = "lz4"):
+        self.gen, self.prev, self.users, self.compression = gen, prev, users, compression
         self.versions, self.taxonomy_version, self.presorted = versions, taxonomy_version, presorted
 
     def __call__(self, date: str, new_rows: pa.Table | None) -> dict:
@@ -227,13 +229,14 @@ class DateWriter:
         table = table.set_column(table.schema.get_field_index("labels_version"), "labels_version",
                                  pa.repeat(pa.scalar(self.versions(date), pa.string()), n))
         in_order = self.presorted and new_rows is not None and new_rows.num_rows == n  # no previous rows
-        write_table(table if in_order else _sorted(table, LABEL_SORT), part_path(self.gen, date), "write_labels")
+        write_table(table if in_order else _sorted(table, LABEL_SORT), part_path(self.gen, date), "write_labels",
+                    self.compression)
         done["written"] = True
         return done
 
 
 def write_merged(prev: Path | None, drop: pa.Array | None, new: pa.Table, aged, schema: pa.Schema, dest: Path,
-                 point: str, keys) -> int:
+                 point: str, keys, compression: str = "lz4") -> int:
     """Write ``dest``: the rows of ``prev`` (sorted by ``keys``, user first; users in ``drop`` left
     out, the rest passed through ``aged``) merged with ``new`` (sorted; its row wins a key in both),
     streaming ``prev`` one row group at a time (without ``prev``, ``new`` may be an iterable of
@@ -241,7 +244,7 @@ def write_merged(prev: Path | None, drop: pa.Array | None, new: pa.Table, aged, 
     as one ``write_table`` of the whole would, so the bytes do not depend on how the rows arrived.
     Returns the number of rows written."""
     with _atomic(dest, point) as tmp:
-        out = RowGroupWriter(tmp, schema)
+        out = RowGroupWriter(tmp, schema, compression)
         try:
             if prev is None:
                 for piece in ([new] if isinstance(new, pa.Table) else new):

@@ -287,7 +287,7 @@ class _Run:
             t0 = time.perf_counter()
             people = None if user_array is None else pa.concat_arrays([user_array, continued_ids])
             writer = GenerationWriter(work / "outputs" / gen_name, prev_gen, user_array, start_date, versions,
-                                      tax.version, people=people)
+                                      tax.version, people=people, compression=cfg.engine.output_compression)
             if people is not None and publishes_layered(work / "store", cfg.run.store_shards, view, lab):
                 beside = PublishBeside(publish_changed)
             try:
@@ -620,7 +620,8 @@ class _Run:
             run = plan_labels(StagedInput(sel, source=self.cfg.interactions, rows=each.rows, content_hash="job"), view,
                               self.cfg.labels, engine=eng, as_of=as_of).materialize()
             t1 = time.perf_counter()
-            piece = GenerationWriter(scratch / f"{k:06d}", None, None, None, versions, tax_version)
+            piece = GenerationWriter(scratch / f"{k:06d}", None, None, None, versions, tax_version,
+                                     compression=self.cfg.engine.output_compression)
             self._write_generation(piece, [run], None, streamed=True)
             run.release()
             shutil.rmtree(scratch / "input" / f"_piece={k}")
@@ -633,7 +634,8 @@ class _Run:
         self.timings["labels"] = round(spent["labels"], 3)
         failpoints.hit("after_labels")
         t0 = time.perf_counter()
-        writer = GenerationWriter(gen, None, None, None, versions, tax_version)
+        writer = GenerationWriter(gen, None, None, None, versions, tax_version,
+                                  compression=self.cfg.engine.output_compression)
         writer.join(pieces)
         shutil.rmtree(scratch)
         self.timings["outputs"] = round(spent["outputs"] + time.perf_counter() - t0, 3)
