@@ -38,6 +38,8 @@ def main() -> None:
     ap.add_argument("--activity", choices=["zipf", "lognormal"], default="zipf")
     ap.add_argument("--bucket-rows", type=int, default=2_500_000)
     ap.add_argument("--keep-data", action="store_true", help="keep (and reuse) the synthetic logs in --workdir")
+    ap.add_argument("--compression", choices=["lz4", "zstd"], default="lz4", help="engine.output_compression")
+    ap.add_argument("--log", default=None, help="the command's messages (pieces done) go to this file, not away")
     args = ap.parse_args()
     root = Path(args.workdir or tempfile.mkdtemp(prefix="labeler-scale-"))
     exe = Path(sys.executable).parent / "labeler"
@@ -51,18 +53,21 @@ def main() -> None:
             tax.save(d / "tax")
             print(f"{n:>12,} interactions written in {time.perf_counter() - t0:.1f}s", flush=True)
         (d / "job.toml").write_text(f'[engine]\nmemory_limit = "{args.memory_limit}"\ntemp_dir = "{d / "spill"}"\n'
-                                    f'bucket_rows = {args.bucket_rows}\n')
+                                    f'bucket_rows = {args.bucket_rows}\noutput_compression = "{args.compression}"\n')
         before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
         t0 = time.perf_counter()
+        log = open(args.log, "a") if args.log else subprocess.DEVNULL
         subprocess.run([str(exe), "label", "--taxonomy", str(d / "tax"), "--interactions",
-                        str(d / "interactions.parquet"), "--out", str(d / "out"), "--config", str(d / "job.toml"),
-                        "-q"], check=True, stdout=subprocess.DEVNULL)
+                        str(d / "interactions.parquet"), "--out", str(d / "out"), "--config", str(d / "job.toml")]
+                       + ([] if args.log else ["-q"]), check=True, stdout=log, stderr=log if args.log else None)
+        out_gb = sum(f.stat().st_size for f in (d / "out").rglob("*") if f.is_file()) / 2**30
         secs = time.perf_counter() - t0
         peak = max(before, resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss) / 2**20
         base = base or secs
         print(f"{n:>12,} interactions ({args.activity}): {secs:7.1f}s (x{secs / base:.1f} the {args.sizes[0]:,} run, "
               f"{secs / base / (n / args.sizes[0]):.2f} of linear), "
-              f"peak RSS of the child {peak:.2f} GiB (memory_limit {args.memory_limit})", flush=True)
+              f"peak RSS of the child {peak:.2f} GiB (memory_limit {args.memory_limit}), "
+              f"outputs {out_gb:.1f} GiB ({args.compression})", flush=True)
         shutil.rmtree(d / "out", ignore_errors=True)
         shutil.rmtree(d / "spill", ignore_errors=True)
         if not args.keep_data:

@@ -606,6 +606,7 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
     if raw.num_rows:
         days = (pc.max(raw.column("mx")).as_py() or 0) // DAY_US - pc.min(raw.column("mn")).as_py() // DAY_US
         allow_open_files(max(days, 0) + 1, run.intake.rows_in)
+    users, raw = raw.num_rows, None  # a billion-row log has tens of millions of users: hold none of them
     dates = DateFiles(tmp / "labels", parked=tmp / "parked", compression=_compression(eng))
     footprints = RowGroupWriter(tmp / "footprints.parquet", FOOTPRINTS_SCHEMA, _compression(eng))
     from tqdm import tqdm
@@ -629,7 +630,7 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
         shutil.rmtree(tmp / "scatter" / f"_piece={k}")
         log.info("piece %d of %d: users [%s, %s), %d interactions", k + 1, len(ranges), lo, hi, piece_rows)
         users_done += piece_users
-        bar.set_postfix_str(f"{users_done:,} of {raw.num_rows:,} users, piece {k + 1}/{len(ranges)}")
+        bar.set_postfix_str(f"{users_done:,} of {users:,} users, piece {k + 1}/{len(ranges)}")
         bar.update(piece_rows)
     bar.close()
     dates.close()
