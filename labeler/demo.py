@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import dataclasses
 import datetime as dt
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -233,6 +234,8 @@ def run_demo(out_dir, seed: int = 7, embedder=None, progress: bool = True, small
     hit = ev.merge(fine[["event_id", "label"]], on="event_id", how="left")
     recall = float((hit["label"] == "new_interest").mean()) if len(hit) else 0.0
     plans = _label_plans(paths["interactions"], tax, cfg, run.content_hash())
+    plans["pieces"] = _label_in_pieces(paths["interactions"], tax, cfg, out / "labels",
+                                       bucket_rows=len(scenario.interactions) // 5)
     from .store import open_store, publish_store
     import hashlib
     key = hashlib.sha256(f"{run.taxonomy_version}\x00{run.labels_version}".encode()).hexdigest()
@@ -281,6 +284,29 @@ def _label_plans(interactions, tax, cfg, want: str) -> dict:
         same = run.content_hash() == want
         out[plan] = {"seconds": round(time.perf_counter() - started, 2), "same_labels": same}
     return out
+
+
+def _label_in_pieces(interactions, tax, cfg, written: Path, bucket_rows: int) -> dict:
+    """The demo's labels again as a large run writes them, in pieces of users of about
+    ``bucket_rows`` interactions (each date's file appended to piece by piece), and whether the
+    files are the bytes of the one pass written to ``written``."""
+    import shutil
+    import time
+
+    from .config import EngineConfig
+    from .engines import make_engine
+    from .labelling import plan_labels
+    folder = written.parent / ".labels-in-pieces"
+    started = time.perf_counter()
+    run = plan_labels(interactions, tax, cfg, engine=make_engine(EngineConfig(bucket_rows=bucket_rows)))
+    run.write(folder)
+
+    def files(root: Path) -> dict:
+        return {str(p.relative_to(root)): p.read_bytes() for p in sorted(root.rglob("*.parquet"))}
+    same = files(folder) == files(written)
+    shutil.rmtree(folder)
+    return {"seconds": round(time.perf_counter() - started, 2), "bucket_rows": bucket_rows,
+            "pieces": run.written["pieces"] if run.written else 1, "same_files": same}
 
 
 def _fast_encoder(out, scenario, tax, embedder, progress, model_seconds) -> dict:

@@ -498,7 +498,8 @@ class LabelRun:
             os.replace(tmp / name, dest)
         shutil.rmtree(tmp, ignore_errors=True)
         if pieces:
-            self.written = {"footprints": out / "footprints.parquet", "history": history[0], "as_of_us": history[1]}
+            self.written = {"footprints": out / "footprints.parquet", "history": history[0], "as_of_us": history[1],
+                            "pieces": history[2]}
         log.info("wrote %d label rows and %d footprint rows to %s", n, fp_rows, out)
         return summary
 
@@ -649,7 +650,7 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
     summary = run.summary(merged)
     summary["outputs"] = {"labels_content_hash": sums_digest(tuple(sums), run._hash_extra)}
     history = pa.concat_tables(histories) if histories else pa.table({"user_id": [], "history_len": []})
-    return n, fp_rows, summary, (history, as_of_us)
+    return n, fp_rows, summary, (history, as_of_us, len(ranges))
 
 
 def _compression(engine: Engine) -> str:

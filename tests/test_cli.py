@@ -116,6 +116,8 @@ def test_demo_small_runs_every_stage(cli, tmp_path):
     plans = json.loads((tmp_path / "d" / "demo-summary.json").read_text())["labels"]["plans"]
     assert plans["scan"]["same_labels"] and plans["windows"]["same_labels"]  # labeler/scan.py equals the windows
     assert "both equal the labels written: yes" in out
+    assert plans["pieces"]["same_files"] and plans["pieces"]["pieces"] > 1  # pieces write one pass's bytes
+    assert "pieces of users" in out and "the same files as one pass: yes" in out
     evaluation = json.loads((tmp_path / "d" / "demo-summary.json").read_text())["evaluation"]
     assert set(evaluation["policies"]) == {"popularity", "in_profile", "explore_mix"}
     assert evaluation["expected_order_holds"] is True

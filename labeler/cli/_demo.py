@@ -47,6 +47,10 @@ def run(args) -> int:
     print(f"label plans: the sorted pass {pl['scan']['seconds']:.1f}s (with loading it), the windows "
           f"{pl['windows']['seconds']:.1f}s; both equal the labels written: "
           f"{'yes' if pl['scan']['same_labels'] and pl['windows']['same_labels'] else 'NO'}")
+    pc = pl["pieces"]
+    print(f"labels in pieces as a large run writes them (engine.bucket_rows = {pc['bucket_rows']:,}: "
+          f"{pc['pieces']} pieces of users, {pc['seconds']:.1f}s): the same files as one pass: "
+          f"{'yes' if pc['same_files'] else 'NO'}")
     print(f"true new-interest events after the burn-in ({lab['label_from'][:10]}): "
           f"{lab['true_new_interest_events_after_burn_in']}, labelled new_interest at level 1: "
           f"{100 * lab['share_labelled_new_interest_level1']:.1f}%")
