@@ -554,6 +554,30 @@ class Piece(NamedTuple):
     users: int
 
 
+SAMPLE_ROWS = 1_000_000  # the rows whose users set the pieces' cut
+
+
+def cut_users(engine: Engine, ev, rows: int, limit: int) -> list[Piece]:
+    """Ranges of user ids for pieces of about ``limit`` of the ``rows`` interactions of ``ev``, from
+    the interactions per user in a sample of about SAMPLE_ROWS rows (Bernoulli, seeded; every row
+    of a smaller log, whose counts are then exact). Counting every user's rows of a large log is
+    itself a large aggregation: at 1B interactions of 20M users it ran out of a 2 GB memory limit.
+    The cut sets only the pieces' sizes (a piece's ``rows`` and ``users`` are estimates when
+    sampled): the outputs are the same bytes for any cut."""
+    fraction = min(1.0, SAMPLE_ROWS / rows) if rows else 1.0
+    sample = ev if fraction >= 1.0 else ev.sample(fraction, method="row", seed=7)
+    counts = engine.to_arrow(sample.group_by("user_id").aggregate(n=sample.count()))
+    if fraction < 1.0:
+        scaled = pc.cast(pc.ceil(pc.divide(pc.cast(counts.column("n"), pa.float64()), fraction)), pa.int64())
+        counts = counts.set_column(counts.schema.get_field_index("n"), "n", scaled)
+    return user_pieces(counts, limit)
+
+
+def rows_in(files: list[str]) -> int:
+    """Rows of Parquet files, from their footers."""
+    return sum(pq.ParquetFile(f).metadata.num_rows for f in files)
+
+
 def user_pieces(counts: pa.Table, limit: int) -> list[Piece]:
     """Ranges of user ids, in id order, each holding about ``limit`` interactions (a heavier user
     is a range of its own). ``counts``: user_id, n.
@@ -583,31 +607,28 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
     """
     eng, cfg, ev = run.engine, run.config, run.ev
     # the latest kept event: the collapse of duplicates keeps their time, so without max_user_events
-    # (which counts collapsed rows) it comes with the pieces' row counts, in one pass
+    # (which counts collapsed rows) it is the latest event of a kept type
     kept = None if cfg.event_types is None else ev.event_type.isin(list(cfg.event_types))
-    raw = eng.to_arrow(ev.group_by("user_id").aggregate(n=ev.count(), mx=ev.ts_us.max(where=kept),
-                                                          mn=ev.ts_us.min()))
+    span = eng.to_arrow(ev.aggregate(mx=ev.ts_us.max(where=kept), mn=ev.ts_us.min()))
+    latest, earliest = span.column("mx")[0].as_py(), span.column("mn")[0].as_py()
     if run.as_of is not None:
         as_of_us = run.as_of_us
     elif cfg.max_user_events is None:
-        as_of_us = pc.max(raw.column("mx")).as_py()
+        as_of_us = latest
     else:
         prepared = prepare(ev, cfg)
         stats = eng.to_arrow(prepared.group_by("user_id").aggregate(n=prepared.count(), mx=prepared.ts_us.max()))
         keep = stats.filter(pc.less_equal(stats.column("n"), cfg.max_user_events))
         as_of_us = pc.max(keep.column("mx")).as_py()
     as_of = None if as_of_us is None else pd.Timestamp(as_of_us, unit="us", tz="UTC")
-    ranges = user_pieces(raw.select(["user_id", "n"]), limit)
-    log.info("labelling %d interactions of %d users in %d pieces of about %d", run.intake.rows_in, raw.num_rows,
-             len(ranges), limit)
+    ranges = cut_users(eng, ev, run.intake.rows_in, limit)
+    log.info("labelling %d interactions in %d pieces of about %d", run.intake.rows_in, len(ranges), limit)
     n = 0
     sums = [0, 0, 0]
     parts, histories = [], []
     # every date's file and the footprints stay open while the pieces append to them in order
-    if raw.num_rows:
-        days = (pc.max(raw.column("mx")).as_py() or 0) // DAY_US - pc.min(raw.column("mn")).as_py() // DAY_US
-        allow_open_files(max(days, 0) + 1, run.intake.rows_in)
-    users, raw = raw.num_rows, None  # a billion-row log has tens of millions of users: hold none of them
+    if earliest is not None:
+        allow_open_files(max((latest or earliest) // DAY_US - earliest // DAY_US, 0) + 1, run.intake.rows_in)
     dates = DateFiles(tmp / "labels", parked=tmp / "parked", compression=_compression(eng))
     footprints = RowGroupWriter(tmp / "footprints.parquet", FOOTPRINTS_SCHEMA, _compression(eng))
     from tqdm import tqdm
@@ -616,7 +637,8 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
     users_done = 0
     # one pass cuts the input into the pieces' files: each piece then reads its own rows only
     scattered = eng.scatter(ev.select(*_INPUT_COLUMNS), "user_id", [p.hi for p in ranges[:-1]], tmp / "scatter")
-    for k, (lo, hi, piece_rows, piece_users) in enumerate(ranges):
+    for k, (lo, hi, _, _) in enumerate(ranges):
+        piece_rows = rows_in(scattered[k])
         sel = eng.read_parquet(scattered[k])
         staged = Staged(sel, source=run.intake.source, rows=piece_rows,
                         content_hash=run.intake.content_hash)
@@ -630,8 +652,8 @@ def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = Fals
         sub.release()
         shutil.rmtree(tmp / "scatter" / f"_piece={k}")
         log.info("piece %d of %d: users [%s, %s), %d interactions", k + 1, len(ranges), lo, hi, piece_rows)
-        users_done += piece_users
-        bar.set_postfix_str(f"{users_done:,} of {users:,} users, piece {k + 1}/{len(ranges)}")
+        users_done += parts[-1]["users"]
+        bar.set_postfix_str(f"{users_done:,} users, piece {k + 1}/{len(ranges)}")
         bar.update(piece_rows)
     bar.close()
     dates.close()

@@ -58,6 +58,22 @@ def test_pieces_write_the_bytes_of_one_pass(tmp_path, scenario, name):
                                   check_dtype=False)
 
 
+def test_a_cut_from_a_sample_of_rows_writes_the_same_bytes(tmp_path, scenario, monkeypatch):
+    """A large log's pieces are cut from a sample of its rows (counting every user's rows of 1B
+    interactions ran out of memory): the cut is then approximate, the files still one pass's."""
+    from labeler import labelling
+    ev, tax = scenario
+    monkeypatch.setattr(labelling, "SAMPLE_ROWS", 800)
+    cfg = LabelConfig(min_support=2, memory_days=7)
+    plan_labels(ev, tax, cfg, engine=make_engine(EngineConfig(bucket_rows=None))).write(tmp_path / "one")
+    many = plan_labels(ev, tax, cfg, engine=make_engine(EngineConfig(bucket_rows=900)))
+    many.write(tmp_path / "many")
+    assert many.written["pieces"] > 3
+    assert _files(tmp_path / "one") == _files(tmp_path / "many")
+    sampled = labelling.cut_users(many.engine, many.ev, len(ev), 900)
+    assert sum(p.rows for p in sampled) != len(ev)  # estimates from the sample, not counts
+
+
 def test_user_pieces_match_the_greedy_rule():
     """The ranges found by binary search equal the plain greedy loop (a range takes the next user
     while its interactions stay within the limit, and always takes one), on random counts."""

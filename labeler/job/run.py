@@ -600,12 +600,10 @@ class _Run:
         a time (each piece in memory), write each piece as a generation of its own, then join them
         in user order into ``gen``: the same bytes as one pass, with memory bounded by the piece."""
         from tqdm import tqdm
-        from ..labelling import user_pieces
+        from ..labelling import cut_users, rows_in
         ev = eng.read_parquet(files)
-        counts = eng.to_arrow(ev.group_by("user_id").aggregate(n=ev.count()))
-        ranges = user_pieces(counts, limit)
-        log.info("full run of %d interactions of %d users in %d pieces of about %d", total, counts.num_rows,
-                 len(ranges), limit)
+        ranges = cut_users(eng, ev, total, limit)
+        log.info("full run of %d interactions in %d pieces of about %d", total, len(ranges), limit)
         scratch = gen.with_name(f".pieces-{gen.name}")
         shutil.rmtree(scratch, ignore_errors=True)
         # one pass cuts the staged events into the pieces' files: each piece reads its own rows only
@@ -614,10 +612,11 @@ class _Run:
         spent = {"labels": 0.0, "outputs": 0.0}
         bar = tqdm(total=total, unit=" interactions", unit_scale=True, disable=not self.progress,
                    desc="labelling in pieces")
-        for k, each in enumerate(ranges):
+        for k in range(len(ranges)):
             t0 = time.perf_counter()
+            piece_rows = rows_in(scattered[k])
             sel = eng.read_parquet(scattered[k])
-            run = plan_labels(StagedInput(sel, source=self.cfg.interactions, rows=each.rows, content_hash="job"), view,
+            run = plan_labels(StagedInput(sel, source=self.cfg.interactions, rows=piece_rows, content_hash="job"), view,
                               self.cfg.labels, engine=eng, as_of=as_of).materialize()
             t1 = time.perf_counter()
             piece = GenerationWriter(scratch / f"{k:06d}", None, None, None, versions, tax_version,
@@ -628,7 +627,7 @@ class _Run:
             pieces.append(piece)
             spent["labels"] += t1 - t0
             spent["outputs"] += time.perf_counter() - t1
-            bar.update(each.rows)
+            bar.update(piece_rows)
             bar.set_postfix_str(f"piece {k + 1}/{len(ranges)}")
         bar.close()
         self.timings["labels"] = round(spent["labels"], 3)
