@@ -60,10 +60,12 @@ def test_pieces_write_the_bytes_of_one_pass(tmp_path, scenario, name):
 
 def test_a_cut_from_a_sample_of_rows_writes_the_same_bytes(tmp_path, scenario, monkeypatch):
     """A large log's pieces are cut from a sample of its rows (counting every user's rows of 1B
-    interactions ran out of memory): the cut is then approximate, the files still one pass's."""
-    from labeler import labelling
+    interactions ran out of memory) and its input cut into the pieces' files a few sets a pass:
+    the cut is then approximate, the files still one pass's."""
+    from labeler import engines, labelling
     ev, tax = scenario
     monkeypatch.setattr(labelling, "SAMPLE_ROWS", 800)
+    monkeypatch.setattr(engines, "SCATTER_SETS", 2)  # the input cut in several passes
     cfg = LabelConfig(min_support=2, memory_days=7)
     plan_labels(ev, tax, cfg, engine=make_engine(EngineConfig(bucket_rows=None))).write(tmp_path / "one")
     many = plan_labels(ev, tax, cfg, engine=make_engine(EngineConfig(bucket_rows=900)))
