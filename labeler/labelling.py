@@ -598,12 +598,13 @@ def user_pieces(counts: pa.Table, limit: int) -> list[Piece]:
 
 
 def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = False):
-    """Label ``run`` one range of users at a time, then join the pieces in user order.
+    """Label ``run`` one range of users at a time, in user order.
 
-    Every rule is per user, so a piece's rows are exactly the whole run's rows of its users; the
-    pieces are written sorted, and each date's file (and the footprints) is their concatenation
-    in range order, cut into the same row groups as a single pass: the same bytes.
-    Returns (label rows, footprint rows, summary, history table).
+    Every rule is per user, so a piece's rows are exactly the whole run's rows of its users; each
+    piece's rows are appended, sorted, to the open date files (:class:`DateFiles`) and footprints,
+    so each file is the pieces' rows in range order, cut into the same row groups as a single
+    pass: the same bytes. Returns (label rows, footprint rows, summary, (history table, as_of_us,
+    pieces)).
     """
     eng, cfg, ev = run.engine, run.config, run.ev
     # the latest kept event: the collapse of duplicates keeps their time, so without max_user_events
