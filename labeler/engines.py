@@ -149,13 +149,34 @@ class DuckDBEngine(Engine):
         # the generic date difference costs about a tenth of a label run here
         return _duckdb_epoch_us(ts)
 
-    def table(self, data: pd.DataFrame | pa.Table, prefix: str = "t"):
-        """Register in-memory data as a view over its Arrow form: read where it is, not copied
-        into the database first (a copy of a 5M-row log cost about 0.3 s and its memory again)."""
+    def table(self, data, prefix: str = "t"):
+        """Register in-memory data (a DataFrame, an Arrow table, or an Arrow dataset of files, read as
+        they are scanned) as a view over its Arrow form: read where it is, not copied into the
+        database first (a copy of a 5M-row log cost about 0.3 s and its memory again)."""
         name = f"_{prefix}_{uuid.uuid4().hex[:8]}"
-        arrow = data if isinstance(data, pa.Table) else pa.Table.from_pandas(data, preserve_index=False)
+        arrow = data if not isinstance(data, pd.DataFrame) else pa.Table.from_pandas(data, preserve_index=False)
         self.con.con.register(name, arrow)  # the connection holds the table while the view exists
         return self.con.table(name)
+
+    def query_each(self, build):
+        """A function that runs the query ``build(table)`` over an Arrow table and returns its result
+        as Arrow: the query is compiled once, for the first table's schema, and runs on a cursor of
+        its own, so it can run while a streamed result (``to_batches``) is open on the connection."""
+        sql, cur = None, self.con.con.cursor()
+
+        def run(data: pa.Table) -> pa.Table:
+            nonlocal sql
+            if sql is None:
+                sql = ibis.to_sql(build(ibis.table(ibis.Schema.from_pyarrow(data.schema), name="_each")),
+                                  dialect="duckdb")
+            # in batches of 64k rows, which the query reads on every thread (one batch is one task):
+            # 0.52 s for 5M scanned rows against 0.74 s as whole chunks
+            cur.register("_each", pa.Table.from_batches(data.to_batches(max_chunksize=1 << 16), data.schema))
+            try:
+                return cur.sql(sql).to_arrow_table()
+            finally:
+                cur.unregister("_each")
+        return run
 
     def drop_table(self, table) -> None:
         """Forget ``table``, made by ``table()`` (its Arrow data is no longer held) or ``read_parquet``."""

@@ -239,16 +239,22 @@ def with_known_topics(rows: ir.Table, transitions: ir.Table, cfg: LabelConfig, t
     return j.select(*rows.columns, known_topics=j.known_topics.fill_null(0))
 
 
-def per_interaction(rows: ir.Table, single_topic: bool) -> ir.Table:
+# the labels' columns that are the interaction's own (a label run copies them from its input)
+INTERACTION_COLUMNS = ("user_id", "item_id", "ts", "ts_us", "event_id", "level")
+
+
+def per_interaction(rows: ir.Table, single_topic: bool, row_id: str | None = None) -> ir.Table:
     """One row per (interaction, level) with topic counts and the topics a label can name.
 
     With ``single_topic`` (every item has at most one topic per level) this is a projection;
-    otherwise the item's topic rows are aggregated, "first" meaning lowest ``pos``.
+    otherwise the item's topic rows are aggregated, "first" meaning lowest ``pos``. ``row_id``:
+    a column to keep (for an aggregated interaction, its smallest value).
     """
     placed = rows.topic_id.notnull()
+    keep = {} if row_id is None else {row_id: rows[row_id] if single_topic else rows[row_id].min()}
     if single_topic:
         return rows.select(
-            "user_id", "item_id", "ts_us", "event_id", "level", "ts", "engagement", "history_len",
+            "user_id", "item_id", "ts_us", "event_id", "level", "ts", "engagement", "history_len", **keep,
             n_topics=placed.cast("int64"), n_known=(placed & rows.known).cast("int64"),
             first_known=ibis.ifelse(rows.known, rows.topic_id, ibis.null("string")),
             first_unknown=ibis.ifelse(rows.known, ibis.null("string"), rows.topic_id),
@@ -261,13 +267,15 @@ def per_interaction(rows: ir.Table, single_topic: bool) -> ir.Table:
         first_known=rows.topic_id.argmin(rows.pos, where=placed & rows.known),
         first_unknown=rows.topic_id.argmin(rows.pos, where=placed & ~rows.known),
         primary=rows.topic_id.argmin(rows.pos, where=placed),
-        blocked=(placed & rows.nb).cast("int64").max(), known_topics=rows.known_topics.max())
+        blocked=(placed & rows.nb).cast("int64").max(), known_topics=rows.known_topics.max(), **keep)
 
 
-def label_rows(rows: ir.Table, cfg: LabelConfig, single_topic: bool = False) -> ir.Table:
+def label_rows(rows: ir.Table, cfg: LabelConfig, single_topic: bool = False, row_id: str | None = None) -> ir.Table:
     """Collapse topic rows (with ``known`` and ``known_topics``) to one row per (interaction, level)
-    and apply the label rules."""
-    g = per_interaction(rows, single_topic)
+    and apply the label rules. With ``row_id``, that column stands in for the interaction's own
+    columns (``INTERACTION_COLUMNS``), for a caller that holds them already (the rows of one
+    interaction are the same in those columns)."""
+    g = per_interaction(rows, single_topic, row_id)
     in_profile = (g.n_known >= 1) if cfg.multi_topic == "all_new" else (g.n_known == g.n_topics)
     label = ibis.cases((g.n_topics == 0, "unplaced"), (g.history_len < cfg.warmup, "cold_start"),
                        (in_profile, "in_profile"), else_="new_interest")
@@ -286,8 +294,8 @@ def label_rows(rows: ir.Table, cfg: LabelConfig, single_topic: bool = False) -> 
     if cfg.label_from is not None:
         from_us = int(cfg.label_from.timestamp() * 1_000_000)
         out = out.filter(out.ts_us >= from_us)
-    return out.select("user_id", "item_id", "ts", "ts_us", "event_id", "level", "topic_id", "label",
-                      "engaged", "discovery", "reward_multiplier", "shaped_reward",
+    own = list(INTERACTION_COLUMNS) if row_id is None else [row_id]
+    return out.select(*own, "topic_id", "label", "engaged", "discovery", "reward_multiplier", "shaped_reward",
                       out.history_len.cast("int64").name("history_len"),
                       out.known_topics.cast("int64").name("known_topics"))
 

@@ -14,7 +14,8 @@ plan sorts the rows twice (once per window), and its duplicate collapse is a has
 every interaction; here the rows are sorted by the whole interaction key as well, so duplicates
 lie side by side, and a log that has any is handed back to the relational collapse (a run with
 duplicates costs both; exactness never depends on the check). The label projection that follows
-(:func:`labeler.labels.label_rows`) is the relational one, unchanged.
+(:func:`labeler.labels.label_rows`) is the relational one, unchanged, run on each chunk of the
+pass as it is scanned.
 
 DuckDB only (the sorted rows stream through this process in Arrow batches, each chunk of whole
 users through the compiled loop); Spark keeps the windows. The tests run the golden cases, the
@@ -29,7 +30,7 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
-import pyarrow.parquet as pq
+import pyarrow.dataset as ds
 
 from .config import LabelConfig
 
@@ -110,21 +111,25 @@ def _same(col: pa.ChunkedArray | pa.Array, nulls_equal: bool) -> np.ndarray:
     return eq.to_numpy(zero_copy_only=False)
 
 
-def scanned_rows(engine, rows, cfg: LabelConfig):
+def scanned_rows(engine, rows, cfg: LabelConfig, then=None, hold: bool = False):
     """``with_known_topics(with_support(rows))`` by one sorted pass, as an engine table; None when
     ``rows`` hold duplicate interactions (same user, item, time and event id), which only the
     relational collapse may merge. ``rows`` are topic rows (:func:`labeler.labels.topic_rows`,
-    with carried stand-ins or not).
+    with carried stand-ins or not). With ``then`` (a function of an Arrow table that reads each
+    (user, level) sequence alone, such as the label projection), the table holds ``then`` of the
+    scanned rows instead: it is applied to each chunk as the chunk is scanned.
 
     The sorted rows stream through this process in batches, cut so that each chunk holds whole
-    (user, level) sequences; the scanned chunks stay in memory up to a quarter of the engine's
-    ``memory_limit`` and are written to a scratch Parquet file in the engine's ``temp_dir`` beyond
-    it, so memory follows a batch and the limit, not the log. Returns a :class:`Scanned`, whose
-    ``table`` is the engine table (``release`` it when done).
+    (user, level) sequences; the chunks stay in memory up to a quarter of the engine's
+    ``memory_limit`` and are written to a scratch Arrow file (LZ4) in the engine's ``temp_dir``
+    beyond it, so memory follows a batch and the limit, not the log (``hold``: all in memory, for a
+    caller that reads them all into memory next anyway). Returns a :class:`Scanned`,
+    whose ``table`` is the engine table (``release`` it when done).
     """
     keep = ["user_id", "item_id", "ts", "ts_us", "event_id", "level", "engagement", "history_len", "topic_id",
             "pos", "nb", "known_before"]  # what the pass and the label projection read
-    out = Scanned(engine, budget=_bytes(engine.config.memory_limit) // 4)
+    finish = then or (lambda t: t)
+    out = Scanned(engine, budget=None if hold else _bytes(engine.config.memory_limit) // 4)
     tail, tail_newseq = None, None
     reader = engine.sorted_batches(rows.select(*keep), list(ORDER), BATCH_ROWS)
     for batch in reader:
@@ -132,12 +137,14 @@ def scanned_rows(engine, rows, cfg: LabelConfig):
         newseq = _new_sequences(t)
         starts = np.flatnonzero(newseq)
         cut = int(starts[-1]) if len(starts) else 0  # the last sequence may go on in the next batch
-        if cut and not out.add(_scan_chunk(t.slice(0, cut), newseq[:cut], cfg)):
+        if cut and not out.add(_scan_chunk(t.slice(0, cut), newseq[:cut], cfg), finish):
             return out.discard()
         tail, tail_newseq = t.slice(cut), newseq[cut:]
-    if tail is not None and tail.num_rows and not out.add(_scan_chunk(tail, tail_newseq, cfg)):
+    if tail is not None and tail.num_rows and not out.add(_scan_chunk(tail, tail_newseq, cfg), finish):
         return out.discard()
-    return out.finish(reader.schema)
+    if out.empty:  # no rows: the columns alone
+        out.add(_scan_chunk(reader.schema.empty_table(), np.ones(0, np.bool_), cfg), finish)
+    return out.finish()
 
 
 def _new_sequences(t: pa.Table) -> np.ndarray:
@@ -173,27 +180,33 @@ def _scan_chunk(t: pa.Table, newseq: np.ndarray, cfg: LabelConfig) -> pa.Table |
 
 
 class Scanned:
-    """Where scanned chunks go: held in memory up to ``budget`` bytes, then a scratch Parquet file
-    (removed by ``release``, or when this object is collected)."""
+    """Where scanned chunks go: held in memory up to ``budget`` bytes (None: no limit), then a scratch Arrow IPC file
+    with LZ4 buffers (removed by ``release``, or when this object is collected). Measured on 5M
+    scanned rows: written in 0.39 s and labelled from in 0.76 s, against 1.76 s and 0.70 s for a
+    Parquet file with LZ4 (its encoding was a third of the scan plan's time at 50M rows)."""
 
-    def __init__(self, engine, budget: int):
+    def __init__(self, engine, budget: int | None):
         self.engine, self.budget = engine, budget
         self.chunks: list[pa.Table] = []
         self.held = 0
+        self.empty = True
         self.path: Path | None = None
-        self.writer: pq.ParquetWriter | None = None
+        self.writer: pa.ipc.RecordBatchFileWriter | None = None
         self.table = None
 
-    def add(self, chunk: pa.Table | None) -> bool:
+    def add(self, chunk: pa.Table | None, finish) -> bool:
+        """Keep ``finish(chunk)``; False (nothing kept) when ``chunk`` is None."""
         if chunk is None:
             return False
+        chunk, self.empty = finish(chunk), False
         if self.writer is None:
             self.chunks.append(chunk)
             self.held += chunk.nbytes
-            if self.held > self.budget:  # from here on the chunks go to disk
-                self.path = self.engine.scratch_path("scanned", ".parquet")
+            if self.budget is not None and self.held > self.budget:  # from here on the chunks go to disk
+                self.path = self.engine.scratch_path("scanned", ".arrow")
                 weakref.finalize(self, self.path.unlink, missing_ok=True)
-                self.writer = pq.ParquetWriter(self.path, chunk.schema, compression="lz4")
+                self.writer = pa.ipc.new_file(self.path, chunk.schema,
+                                              options=pa.ipc.IpcWriteOptions(compression="lz4"))
                 for c in self.chunks:
                     self.writer.write_table(c)
                 self.chunks, self.held = [], 0
@@ -207,25 +220,29 @@ class Scanned:
             self.path.unlink(missing_ok=True)
         return None
 
-    def finish(self, schema: pa.Schema) -> "Scanned":
-        """Make ``table``: the scanned rows as an engine table."""
+    def finish(self) -> "Scanned":
+        """Make ``table``: the kept rows as an engine table."""
         if self.writer is not None:
             self.writer.close()
-            self.table = self.engine.read_parquet(self.path)
+            self.table = self.engine.table(ds.dataset(self.path, format="ipc"), "scanned")
             return self
-        if not self.chunks:  # no rows: the columns alone
-            empty = schema.empty_table()
-            self.chunks = [empty.append_column("known", pa.array([], pa.bool_()))
-                           .append_column("known_topics", pa.array([], pa.int64()))]
-        self.table = self.engine.table(pa.concat_tables(self.chunks), "scanned")
-        self.chunks = []
+        self.chunks = [pa.concat_tables(self.chunks)]
+        self.table = self.engine.table(self.chunks[0], "scanned")
         return self
+
+    def arrow(self) -> pa.Table:
+        """The kept rows as Arrow, read where they are (no round trip through the engine)."""
+        if self.path is not None:
+            with pa.ipc.open_file(self.path) as f:
+                return f.read_all()
+        return self.chunks[0]
 
     def release(self) -> None:
         """Forget the table and its data (the labels over it are not read again)."""
         if self.table is not None:
             self.engine.drop_table(self.table)
             self.table = None
+        self.chunks = []
         if self.path is not None:
             self.path.unlink(missing_ok=True)
 
