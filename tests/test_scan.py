@@ -13,7 +13,7 @@ from labeler.config import EngineConfig
 from labeler.engines import make_engine
 from labeler.labelling import plan_labels
 from labeler.scan import applies, scanned_rows
-from labelcases import log, taxonomy
+from labelcases import T0, log, taxonomy
 
 TAX = taxonomy({"k1": [("knit", 1.0)], "k2": [("knit", 1.0)], "b1": [("bonsai", 1.0)]})
 
@@ -55,8 +55,9 @@ def test_a_log_without_duplicates_is_scanned_as_it_came():
 
 
 def test_chunks_beyond_the_budget_go_to_a_scratch_file(monkeypatch, tmp_path):
-    """Streamed two rows at a time with no memory budget, every chunk goes to a scratch Parquet file
-    in temp_dir; the labels equal the windows', and releasing the run removes the file."""
+    """Streamed two rows at a time with no memory budget, every labelled chunk goes to a scratch
+    Arrow file in temp_dir; the labels equal the windows' (read through the engine, and as Arrow
+    from the file), and releasing the run removes the file."""
     import labeler.scan as scan
     monkeypatch.setattr(scan, "BATCH_ROWS", 2)
     monkeypatch.setattr(scan, "_bytes", lambda limit: 0)
@@ -67,9 +68,30 @@ def test_chunks_beyond_the_budget_go_to_a_scratch_file(monkeypatch, tmp_path):
     assert run._scanned.path is not None and run._scanned.path.exists()
     want = plan_labels(df, TAX, LabelConfig(), engine=make_engine(EngineConfig(label_plan="windows"))).labels_frame()
     pd.testing.assert_frame_equal(got, want)
+    keys = ["user_id", "ts", "item_id"]
+    unordered = run.labels_unordered().to_pandas().drop(columns="ts_us").sort_values(keys).reset_index(drop=True)
+    pd.testing.assert_frame_equal(unordered, want[unordered.columns].sort_values(keys).reset_index(drop=True),
+                                  check_dtype=False)
     path = run._scanned.path
     run.release()
     assert not path.exists()
+
+
+def test_labels_read_unordered_equal_the_labels():
+    """labels_unordered (the pass keeps every labelled chunk in memory for it, or the windows' query
+    read as it comes) holds the same rows as the sorted labels, on both plans, with multi-topic
+    items and carried-free filters (label_from) alike."""
+    multi = taxonomy({"k1": [("knit", 0.9), ("bonsai", 0.8)], "k2": [("knit", 1.0)], "b1": [("bonsai", 1.0)]})
+    df = log(("u", "k1", 0), ("u", "b1", 5), ("v", "k2", 5), ("u", "k2", 9), ("u", "b1", 9), ("v", "k1", 12))
+    keys = ["user_id", "ts", "item_id", "level"]
+    for plan in ("scan", "windows"):
+        cfg = LabelConfig(label_from=(T0 + pd.Timedelta(minutes=6)).isoformat())
+        run = plan_labels(df, multi, cfg, engine=make_engine(EngineConfig(scan_min_rows=0, label_plan=plan)))
+        got = run.labels_unordered().to_pandas().drop(columns="ts_us")
+        want = plan_labels(df, multi, cfg, engine=make_engine(EngineConfig(label_plan="windows"))).labels_frame()
+        assert len(got) == len(want) == 3
+        pd.testing.assert_frame_equal(got.sort_values(keys).reset_index(drop=True),
+                                      want[got.columns].sort_values(keys).reset_index(drop=True), check_dtype=False)
 
 
 def test_memory_limits_read_as_bytes():
