@@ -106,17 +106,12 @@ def _clean_typed(df: pd.DataFrame, source: str):
         ids = arrow[c]
         if ids.null_count or pc.any(pc.or_(pc.equal(pc.utf8_length(ids), 0), pc.utf8_is_space(ids))).as_py():
             return None
-    con = duckdb.connect()
-    con.register("rows", arrow)
-    cols_sql = ", ".join(f'"{c}"' for c in arrow.column_names)
-    rows, total, bad = con.execute(
-        f"SELECT count(*), sum(hash({cols_sql})::HUGEINT), count(*) FILTER (WHERE ts IS NULL OR engagement IS NULL "
-        "OR isnan(engagement) OR isinf(engagement) OR abs(engagement) > 1e300) FROM rows").fetchone()
-    con.close()
+    digest, bad = _hash_counting(arrow, "ts IS NULL OR engagement IS NULL OR isnan(engagement) "
+                                        "OR isinf(engagement) OR abs(engagement) > 1e300")
     if bad:
         return None
     intake = Intake(source=source, rows_in=n, rows_out=n)
-    intake.content_hash = _sums_hash(rows, total)
+    intake.content_hash = digest
     return arrow, intake
 
 
@@ -125,16 +120,18 @@ def rows_hash(table: pa.Table) -> str:
     ``hash`` over every column), computed in this process whatever the engine, so the same rows
     give the same labels_version everywhere. DuckDB does not promise its hash across its own
     releases: the project pins DuckDB's exact version, and labels_version also names labeler's."""
+    return _hash_counting(table)[0]
+
+
+def _hash_counting(table: pa.Table, where: str = "false") -> tuple[str, int]:
+    """(``rows_hash`` of ``table``, its rows matching the SQL condition ``where``), in one pass."""
     con = duckdb.connect()
     con.register("rows", table)
     cols = ", ".join(f'"{c}"' for c in table.column_names)
-    n, total = con.execute(f"SELECT count(*), sum(hash({cols})::HUGEINT) FROM rows").fetchone()
+    n, total, matching = con.execute(f"SELECT count(*), sum(hash({cols})::HUGEINT), "
+                                     f"count(*) FILTER (WHERE {where}) FROM rows").fetchone()
     con.close()
-    return _sums_hash(n, total)
-
-
-def _sums_hash(n: int, total) -> str:
-    return hashlib.sha256(f"rows\x00{n}\x00{total or 0}".encode()).hexdigest()
+    return hashlib.sha256(f"rows\x00{n}\x00{total or 0}".encode()).hexdigest(), matching
 
 
 def files_hash(path: Path) -> str:

@@ -373,8 +373,7 @@ class LabelRun:
         the pass runs for this read, it keeps them all in memory, where they are going anyway)."""
         if self._labels is None:
             self._labels = self._scan_labels(hold=True)
-        labels = self.labels
-        return self._scanned.arrow() if self._scanned is not None else self.engine.to_arrow(labels)
+        return self._scanned.arrow() if self._scanned is not None else self.engine.to_arrow(self._labels)
 
     def labels_arrow(self) -> pa.Table:
         t = self.engine.to_arrow(self._labels_sorted().drop("ts_us"))

@@ -189,7 +189,6 @@ class Scanned:
         self.engine, self.budget, self.then = engine, budget, then
         self.chunks: list[pa.Table] = []
         self.held = 0
-        self.empty = True
         self.path: Path | None = None
         self.writer: pa.ipc.RecordBatchFileWriter | None = None
         self.table = None
@@ -198,7 +197,7 @@ class Scanned:
         """Keep ``then(chunk)``; False (nothing kept) when ``chunk`` is None."""
         if chunk is None:
             return False
-        chunk, self.empty = chunk if self.then is None else self.then(chunk), False
+        chunk = chunk if self.then is None else self.then(chunk)
         if self.writer is None:
             self.chunks.append(chunk)
             self.held += chunk.nbytes
@@ -213,6 +212,11 @@ class Scanned:
         else:
             self.writer.write_table(chunk)
         return True
+
+    @property
+    def empty(self) -> bool:
+        """Nothing kept yet."""
+        return not self.chunks and self.writer is None
 
     def discard(self) -> None:
         if self.writer is not None:
