@@ -824,13 +824,24 @@ def _chunk_labels(engine: Engine, cfg: LabelConfig, single_topic: bool, after_us
     def label(chunk: pa.Table) -> pa.Table:
         n = chunk.num_rows
         got = run(chunk.append_column("_row", pa.array(np.arange(n, dtype=np.int64))))
-        rows = got["_row"].to_numpy()
-        own = chunk.select(list(INTERACTION_COLUMNS))
-        if len(rows) != n or not np.array_equal(rows, np.arange(n)):  # filtered, aggregated or reordered
-            own = own.take(rows)
+        own = _rows_at(chunk.select(list(INTERACTION_COLUMNS)), got["_row"].to_numpy())
         got = got.drop_columns(["_row"])
         return pa.Table.from_arrays([*own.columns, *got.columns], names=[*own.column_names, *got.column_names])
     return label
+
+
+def _rows_at(table: pa.Table, rows: np.ndarray) -> pa.Table:
+    """``table.take(rows)``, as zero-copy slices when ``rows`` runs in a few ascending stretches (the
+    engine returns a projection's 64k-row batches in any order: at 50M rows the copy took 1.5 s)."""
+    if len(rows) == table.num_rows and np.array_equal(rows, np.arange(len(rows))):
+        return table
+    if not len(rows):
+        return table.slice(0, 0)
+    starts = np.flatnonzero(np.diff(rows, prepend=-2) != 1)
+    if len(starts) > max(1, len(rows) >> 12):  # filtered or aggregated: many short stretches
+        return table.take(rows)
+    ends = np.append(starts[1:], len(rows))
+    return pa.concat_tables([table.slice(int(rows[a]), int(b - a)) for a, b in zip(starts, ends)])
 
 
 def _topic_bound(taxonomy) -> int:

@@ -192,10 +192,27 @@ TYPED_BAD = {  # a frame already typed as validation makes it, broken in one val
     "null_user": (lambda d: d.assign(user_id=pd.Series(["u", None], dtype="str")), "column 'user_id': 1 null id"),
     "blank_item": (lambda d: d.assign(item_id=pd.Series(["a", " \t"], dtype="str")), "column 'item_id': 1 empty id"),
     "empty_user": (lambda d: d.assign(user_id=pd.Series(["u", ""], dtype="str")), "column 'user_id': 1 empty id"),
+    "wide_space_user": (lambda d: d.assign(user_id=pd.Series(["u", "\u3000"], dtype="str")),
+                        "column 'user_id': 1 empty id"),
     "null_ts": (lambda d: d.assign(ts=d.ts.where([True, False])), "column 'ts': 1 null timestamp"),
     "nan_engagement": (lambda d: d.assign(engagement=[1.0, float("nan")]), "column 'engagement': 1 null, NaN"),
     "huge_engagement": (lambda d: d.assign(engagement=[1.0, -1e301]), "column 'engagement': 1 engagement value"),
 }
+
+
+def test_typed_frame_with_an_id_starting_with_whitespace_takes_the_general_path():
+    """The one-pass check looks only at an id's first character: an id that starts with whitespace
+    but is not blank is left to the general path, whose result it then gets."""
+    from labeler.engines import make_engine
+    from labeler.intake import _COLUMNS, _arrow_schema, _clean_typed, interactions_table, rows_hash
+    import pyarrow as pa
+    frame = pd.DataFrame({"user_id": pd.Series(["u", " v"], dtype="str"), "item_id": pd.Series(["a", "b"], dtype="str"),
+                          "engagement": [1.0, 2.0], "ts": pd.to_datetime(_TS).astype("datetime64[us, UTC]")})
+    assert _clean_typed(frame, "frame") is None
+    _, intake = interactions_table(make_engine(), frame, source="frame")
+    general, _ = normalize_interactions(frame)
+    want = pa.Table.from_pandas(general[list(_COLUMNS)], schema=_arrow_schema(), preserve_index=False)
+    assert intake.rows_out == 2 and intake.content_hash == rows_hash(want)
 
 
 @pytest.mark.parametrize("name", sorted(TYPED_BAD))

@@ -99,3 +99,19 @@ def test_memory_limits_read_as_bytes():
     from labeler.scan import _bytes
     assert _bytes("4GB") == 4 * 10**9 and _bytes("500MiB") == 500 * 2**20 and _bytes("1.5 GB") == 1_500_000_000
     assert _bytes("lots") == 2**30
+
+
+def test_rows_taken_back_by_row_id_equal_a_take():
+    """The interaction's own columns are taken back by the row ids the per-chunk projection returns:
+    as zero-copy slices when the ids run in ascending stretches (batches returned out of order), by
+    a copy otherwise (rows filtered out); either way the rows of ``Table.take``."""
+    import numpy as np
+    import pyarrow as pa
+    from labeler.labelling import _rows_at
+    table = pa.table({"n": np.arange(200_000), "s": pa.array(np.arange(200_000).astype(str))})
+    blocks = [np.arange(a, min(a + 65_536, 200_000)) for a in range(0, 200_000, 65_536)]
+    rng = np.random.default_rng(7)
+    cases = [np.arange(200_000), np.concatenate(blocks[::-1]), np.concatenate([blocks[2], blocks[0]]),
+             np.sort(rng.choice(200_000, 5_000, replace=False)), np.arange(0)]
+    for rows in cases:
+        assert _rows_at(table, rows).equals(table.take(rows))
