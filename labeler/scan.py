@@ -36,6 +36,7 @@ from .config import LabelConfig
 
 ORDER = ("user_id", "level", "ts_us", "item_id", "event_id", "pos")
 BATCH_ROWS = 1 << 20  # sorted rows fetched at a time
+LONG_ROWS = 4 * BATCH_ROWS  # one user's sequence beyond this is scanned in parts (see _stand_ins)
 
 
 def applies(engine, cfg: LabelConfig, rows: int) -> bool:
@@ -129,21 +130,99 @@ def scanned_rows(engine, rows, cfg: LabelConfig, then=None, hold: bool = False):
     keep = ["user_id", "item_id", "ts", "ts_us", "event_id", "level", "engagement", "history_len", "topic_id",
             "pos", "nb", "known_before"]  # what the pass and the label projection read
     out = Scanned(engine, budget=None if hold else _bytes(engine.config.memory_limit) // 4, then=then)
-    tail, tail_newseq = None, None
+    tail, front = None, 0  # front: stand-in rows at the head of the tail (their scanned rows are dropped)
+    scanned_before = 0  # interactions of the tail's sequence in its parts scanned already
     reader = engine.sorted_batches(rows.select(*keep), list(ORDER), BATCH_ROWS)
     for batch in reader:
-        t = pa.Table.from_batches([batch]) if tail is None else pa.concat_tables([tail, pa.Table.from_batches([batch])])
+        t = pa.Table.from_batches([batch])
+        if tail is not None:
+            t = pa.concat_tables([tail, _more_history(t, scanned_before, _leading(t, tail)) if scanned_before else t])
         newseq = _new_sequences(t)
         starts = np.flatnonzero(newseq)
         cut = int(starts[-1]) if len(starts) else 0  # the last sequence may go on in the next batch
-        if cut and not out.add(_scan_chunk(t.slice(0, cut), newseq[:cut], cfg)):
-            return out.discard()
-        tail, tail_newseq = t.slice(cut), newseq[cut:]
-    if tail is not None and tail.num_rows and not out.add(_scan_chunk(tail, tail_newseq, cfg)):
+        if cut:
+            if not out.add(_scan_part(t.slice(0, cut), newseq[:cut], cfg, front)):
+                return out.discard()
+            front, scanned_before = 0, 0
+        tail = t.slice(cut)
+        done = _last_time_change(tail, front) if tail.num_rows > LONG_ROWS else 0
+        if done:  # one sequence, too long to hold: scan up to its last time, and go on from stand-ins
+            part, rest = tail.slice(0, done), tail.slice(done)
+            if not out.add(_scan_part(part, _new_sequences(part), cfg, front)):
+                return out.discard()
+            standins, once = _stand_ins(part, rest, cfg), int(_once(part).sum())
+            tail, front = pa.concat_tables([standins, _more_history(rest, once, rest.num_rows)]), standins.num_rows
+            scanned_before += once
+    if tail is not None and tail.num_rows and not out.add(_scan_part(tail, _new_sequences(tail), cfg, front)):
         return out.discard()
     if out.empty:  # no rows: the columns alone
         out.add(_scan_chunk(reader.schema.empty_table(), np.ones(0, np.bool_), cfg))
     return out.finish()
+
+
+def _scan_part(t: pa.Table, newseq: np.ndarray, cfg: LabelConfig, front: int) -> pa.Table | None:
+    """``_scan_chunk``, less the rows of its ``front`` stand-ins."""
+    scanned = _scan_chunk(t, newseq, cfg)
+    return scanned.slice(front) if scanned is not None and front else scanned
+
+
+def _last_time_change(t: pa.Table, front: int) -> int:
+    """The last row after ``front`` whose time differs from the row before (0: none): a sequence
+    cut there leaves every interaction, and every set of rows of one time, whole on one side."""
+    ts = t["ts_us"].to_numpy()
+    changes = np.flatnonzero(ts[front + 1:] != ts[front:-1])
+    return int(changes[-1]) + front + 1 if len(changes) else 0
+
+
+def _stand_ins(part: pa.Table, rest: pa.Table, cfg: LabelConfig) -> pa.Table:
+    """Rows that bring a sequence's counts from ``part`` into ``rest`` (its later rows): for each
+    topic, as many qualifying rows as ``part`` holds (at most ``min_support``: beyond it a count no
+    longer changes ``known``), with no item, one microsecond before ``rest``. Scanned ahead of
+    ``rest`` they give its rows the topics known and the known-topic count that ``part`` left,
+    as the carried stand-ins of an incremental run do (:func:`labeler.labels.carried_rows`);
+    ``rest``'s ``history_len`` offset takes ``part``'s interactions (:func:`_more_history`)."""
+    counts = pc.value_counts(part["topic_id"].filter(pa.array(_qualifying(part, cfg))))
+    repeat = np.minimum(counts.field("counts").to_numpy(), int(cfg.min_support))
+    topics = counts.field("values").take(pa.array(np.repeat(np.arange(len(counts)), repeat)))
+    n, first = len(topics), rest.slice(0, 1)
+    same = pa.array(np.zeros(n, np.int64))
+    at = first["ts_us"][0].as_py() - 1
+    values = {"user_id": first["user_id"].take(same), "level": first["level"].take(same),
+              "known_before": first["known_before"].take(same), "topic_id": topics,
+              "ts_us": pa.array(np.full(n, at, np.int64)), "ts": pa.array(np.full(n, at, np.int64)),
+              "engagement": pa.array(np.full(n, float(cfg.engaged_min))), "history_len": same}
+    return pa.table([values[f.name].cast(f.type) if f.name in values else pa.nulls(n, f.type)
+                     for f in rest.schema], schema=rest.schema)
+
+
+def _more_history(t: pa.Table, k: int, rows: int) -> pa.Table:
+    """``t`` with ``k`` more interactions before the ``history_len`` of its first ``rows`` rows."""
+    at = t.schema.get_field_index("history_len")
+    col, kind = t["history_len"], t.schema.field(at).type
+    more = pc.add(col.slice(0, rows), pa.scalar(k, kind))
+    return t.set_column(at, t.schema.field(at), pa.chunked_array([*more.chunks, *col.slice(rows).chunks], kind))
+
+
+def _leading(t: pa.Table, tail: pa.Table) -> int:
+    """How many of ``t``'s first rows go on the sequence ``tail`` ends with (its user and level)."""
+    last = tail.slice(tail.num_rows - 1)
+    same = pc.and_(pc.equal(t["user_id"], last["user_id"][0]), pc.equal(t["level"], last["level"][0]))
+    same = pc.fill_null(same, False).to_numpy(zero_copy_only=False)
+    return len(same) if same.all() else int(np.argmin(same))
+
+
+def _qualifying(t: pa.Table, cfg: LabelConfig) -> np.ndarray:
+    """Rows that count towards their topic's support (``labeler.labels.qualifies``)."""
+    q = pc.is_valid(t["topic_id"]).to_numpy(zero_copy_only=False)
+    if cfg.footprint_from == "engaged":
+        q &= pc.fill_null(pc.greater_equal(t["engagement"], cfg.engaged_min), False).to_numpy(zero_copy_only=False)
+    return q
+
+
+def _once(t: pa.Table) -> np.ndarray:
+    """Each interaction's first topic row at its level (stand-ins have no item)."""
+    return pc.is_valid(t["item_id"]).to_numpy(zero_copy_only=False) \
+        & pc.fill_null(pc.equal(t["pos"], 0), True).to_numpy(zero_copy_only=False)
 
 
 def _new_sequences(t: pa.Table) -> np.ndarray:
@@ -165,12 +244,7 @@ def _scan_chunk(t: pa.Table, newseq: np.ndarray, cfg: LabelConfig) -> pa.Table |
             return None
     codes = pc.dictionary_encode(t["topic_id"]).combine_chunks()
     topic = pc.fill_null(codes.indices, -1).to_numpy().astype(np.int64)
-    placed = topic >= 0
-    q = placed
-    if cfg.footprint_from == "engaged":
-        q = placed & pc.greater_equal(t["engagement"], cfg.engaged_min).to_numpy(zero_copy_only=False)
-    once = has_item & pc.fill_null(pc.equal(t["pos"], 0), True).to_numpy(zero_copy_only=False)
-    known, hist, ktop = _compiled()(newseq, t["ts_us"].to_numpy(), topic, q, once,
+    known, hist, ktop = _compiled()(newseq, t["ts_us"].to_numpy(), topic, _qualifying(t, cfg), _once(t),
                                     t["history_len"].to_numpy().astype(np.int64),
                                     t["known_before"].to_numpy().astype(np.int64), int(cfg.min_support),
                                     len(codes.dictionary))

@@ -125,13 +125,15 @@ def _plan_results(log: pd.DataFrame, cfg: LabelConfig, plan: str, cut: pd.Timest
     return out
 
 
-@settings(max_examples=20, deadline=None, suppress_health_check=[HealthCheck.too_slow])
-@given(events, st.sampled_from(PLAN_CONFIGS), st.integers(0, 7), st.booleans(), st.booleans())
-def test_the_sorted_pass_equals_the_windows(evs, cfg, cut_hour, dedupe, small_batches):
+@settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(events, st.sampled_from(PLAN_CONFIGS), st.integers(0, 7), st.booleans(),
+       st.sampled_from(["as_they_come", "three_at_a_time", "three_and_sequences_in_parts"]))
+def test_the_sorted_pass_equals_the_windows(evs, cfg, cut_hour, dedupe, batches):
     """labeler/scan.py's sorted pass gives the relational windows' labels and footprints, on logs
     with duplicate events (handed back to the collapse) and without, continued from state carried
-    at a cut, and (``small_batches``) streamed three rows at a time with every chunk written to a
-    scratch file: the windows are the rules as written (labeler/labels.py)."""
+    at a cut, and streamed three rows at a time with every chunk written to a scratch file, also
+    with every user's sequence longer than two rows scanned in parts (cut at a change of time,
+    its counts carried by stand-in rows): the windows are the rules as written (labeler/labels.py)."""
     from unittest import mock
 
     import labeler.scan as scan
@@ -140,8 +142,10 @@ def test_the_sorted_pass_equals_the_windows(evs, cfg, cut_hour, dedupe, small_ba
     if dedupe:
         df = df.drop_duplicates(["user_id", "item_id", "ts", "event_id"])
     cut = T0 + pd.Timedelta(hours=cut_hour)
-    with mock.patch.object(scan, "BATCH_ROWS", 3 if small_batches else scan.BATCH_ROWS), \
-            mock.patch.object(scan, "_bytes", (lambda limit: 0) if small_batches else scan._bytes):
+    small = batches != "as_they_come"
+    with mock.patch.object(scan, "BATCH_ROWS", 3 if small else scan.BATCH_ROWS), \
+            mock.patch.object(scan, "LONG_ROWS", 2 if batches == "three_and_sequences_in_parts" else scan.LONG_ROWS), \
+            mock.patch.object(scan, "_bytes", (lambda limit: 0) if small else scan._bytes):
         got = _plan_results(df, cfg, "scan", cut)
     for a, b in zip(got, _plan_results(df, cfg, "windows", cut)):
         pd.testing.assert_frame_equal(a, b)

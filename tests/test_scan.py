@@ -115,3 +115,31 @@ def test_rows_taken_back_by_row_id_equal_a_take():
              np.sort(rng.choice(200_000, 5_000, replace=False)), np.arange(0)]
     for rows in cases:
         assert _rows_at(table, rows).equals(table.take(rows))
+
+
+def test_a_user_longer_than_a_chunk_is_scanned_in_parts():
+    """A sequence past ``LONG_ROWS`` (one heavy user, a bot) is scanned in parts cut at a change of
+    time, its counts carried into the next part by stand-in rows: memory follows the parts, and the
+    labels and footprints equal the relational windows' for settings that read counts differently
+    (support above one, engaged-only footprints, multi-topic items, two levels)."""
+    from unittest import mock
+
+    import numpy as np
+
+    import labeler.scan as scan
+    tax = taxonomy({"a": [("x", 1.0)], "b": [("y", 1.0)], "c": [("x", 0.9), ("z", 0.8)], "d": [("z", 1.0)]},
+                   parents={"x": "p", "y": "p", "z": "q"}, level=1)
+    rng = np.random.default_rng(3)
+    heavy = [("bot", str(rng.choice(list("abcdq"))), int(m), float(rng.choice([0.0, 0.5, 1.0, 2.0])), f"e{k}")
+             for k, m in enumerate(np.sort(rng.integers(0, 120, 300)))]  # ties: several events a minute
+    df = log(*heavy, ("u1", "a", 5), ("u1", "d", 9), ("u2", "b", 1))
+    for cfg in (LabelConfig(), LabelConfig(min_support=3), LabelConfig(footprint_from="engaged", engaged_min=1.0),
+                LabelConfig(multi_topic="any_new", warmup=2)):
+        want = plan_labels(df, tax, cfg, engine=make_engine(EngineConfig(label_plan="windows")))
+        with mock.patch.object(scan, "BATCH_ROWS", 16), mock.patch.object(scan, "LONG_ROWS", 20), \
+                mock.patch.object(scan, "_stand_ins", wraps=scan._stand_ins) as stand_ins:
+            got = plan_labels(df, tax, cfg, engine=make_engine(EngineConfig(scan_min_rows=0)))
+            labels, footprints = got.labels_frame(), got.footprints_frame()
+        assert got.scan and stand_ins.call_count >= 10
+        pd.testing.assert_frame_equal(labels, want.labels_frame())
+        pd.testing.assert_frame_equal(footprints, want.footprints_frame())
