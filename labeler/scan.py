@@ -18,7 +18,8 @@ duplicates costs both; exactness never depends on the check). The label projecti
 pass as it is scanned.
 
 DuckDB only (the sorted rows stream through this process in Arrow batches, each chunk of whole
-users through the compiled loop); Spark keeps the windows. The tests run the golden cases, the
+users through the compiled loop; a user longer than ``LONG_ROWS`` rows in parts); Spark keeps the
+windows. The tests run the golden cases, the
 MovieLens oracle and the carried-state tests on both plans, and a property test compares them.
 """
 from __future__ import annotations
@@ -117,11 +118,13 @@ def scanned_rows(engine, rows, cfg: LabelConfig, then=None, hold: bool = False):
     ``rows`` hold duplicate interactions (same user, item, time and event id), which only the
     relational collapse may merge. ``rows`` are topic rows (:func:`labeler.labels.topic_rows`,
     with carried stand-ins or not). With ``then`` (a function of an Arrow table that reads each
-    (user, level) sequence alone, such as the label projection), the table holds ``then`` of the
+    interaction's rows alone, such as the label projection), the table holds ``then`` of the
     scanned rows instead: it is applied to each chunk as the chunk is scanned.
 
     The sorted rows stream through this process in batches, cut so that each chunk holds whole
-    (user, level) sequences; the chunks stay in memory up to a quarter of the engine's
+    (user, level) sequences, except that a sequence past ``LONG_ROWS`` rows (a bot's) is cut at a
+    change of time and goes on from stand-in rows that carry its counts (:func:`_stand_ins`); the
+    chunks stay in memory up to a quarter of the engine's
     ``memory_limit`` and are written to a scratch Arrow file (LZ4) in the engine's ``temp_dir``
     beyond it, so memory follows a batch and the limit, not the log (``hold``: all in memory, for a
     caller that reads them all into memory next anyway). Returns a :class:`Scanned`,
