@@ -151,12 +151,12 @@ def scanned_rows(engine, rows, cfg: LabelConfig, then=None, hold: bool = False):
         done = _last_time_change(tail, front) if tail.num_rows > LONG_ROWS else 0
         if done:  # one sequence, too long to hold: scan up to its last time, and go on from stand-ins
             part, rest = tail.slice(0, done), tail.slice(done)
-            if not out.add(_scan_part(part, _new_sequences(part), cfg, front)):
+            if not out.add(_scan_part(part, _one_sequence(done), cfg, front)):
                 return out.discard()
             standins, once = _stand_ins(part, rest, cfg), int(_once(part).sum())
             tail, front = pa.concat_tables([standins, _more_history(rest, once, rest.num_rows)]), standins.num_rows
             scanned_before += once
-    if tail is not None and tail.num_rows and not out.add(_scan_part(tail, _new_sequences(tail), cfg, front)):
+    if tail is not None and tail.num_rows and not out.add(_scan_part(tail, _one_sequence(tail.num_rows), cfg, front)):
         return out.discard()
     if out.empty:  # no rows: the columns alone
         out.add(_scan_chunk(reader.schema.empty_table(), np.ones(0, np.bool_), cfg))
@@ -167,6 +167,13 @@ def _scan_part(t: pa.Table, newseq: np.ndarray, cfg: LabelConfig, front: int) ->
     """``_scan_chunk``, less the rows of its ``front`` stand-ins."""
     scanned = _scan_chunk(t, newseq, cfg)
     return scanned.slice(front) if scanned is not None and front else scanned
+
+
+def _one_sequence(n: int) -> np.ndarray:
+    """``_new_sequences`` of rows known to be one (user, level) sequence, as the tail always is."""
+    newseq = np.zeros(n, np.bool_)
+    newseq[:1] = True
+    return newseq
 
 
 def _last_time_change(t: pa.Table, front: int) -> int:
@@ -188,12 +195,12 @@ def _stand_ins(part: pa.Table, rest: pa.Table, cfg: LabelConfig) -> pa.Table:
     repeat = np.minimum(counts.field("counts").to_numpy(), int(cfg.min_support))
     topics = counts.field("values").take(pa.array(np.repeat(np.arange(len(counts)), repeat)))
     n, first = len(topics), rest.slice(0, 1)
-    same = pa.array(np.zeros(n, np.int64))
+    zeros = pa.array(np.zeros(n, np.int64))  # the first row's index n times, and a history of 0
     at = first["ts_us"][0].as_py() - 1
-    values = {"user_id": first["user_id"].take(same), "level": first["level"].take(same),
-              "known_before": first["known_before"].take(same), "topic_id": topics,
+    values = {"user_id": first["user_id"].take(zeros), "level": first["level"].take(zeros),
+              "known_before": first["known_before"].take(zeros), "topic_id": topics,
               "ts_us": pa.array(np.full(n, at, np.int64)), "ts": pa.array(np.full(n, at, np.int64)),
-              "engagement": pa.array(np.full(n, float(cfg.engaged_min))), "history_len": same}
+              "engagement": pa.array(np.full(n, float(cfg.engaged_min))), "history_len": zeros}
     return pa.table([values[f.name].cast(f.type) if f.name in values else pa.nulls(n, f.type)
                      for f in rest.schema], schema=rest.schema)
 
