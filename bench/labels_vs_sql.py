@@ -29,8 +29,8 @@ import pyarrow.parquet as pq
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 from labeler import LabelConfig, Taxonomy  # noqa: E402
-from labeler.intake import rows_hash  # noqa: E402
-from labeler.labelling import plan_labels  # noqa: E402
+from labeler.labels.intake import rows_hash  # noqa: E402
+from labeler.labels.plan import plan_labels  # noqa: E402
 
 # The fastest query for the default settings we could write by hand (it also beat the first one
 # this benchmark used, a support window plus a timeline of first times joined back, by 1.5x at

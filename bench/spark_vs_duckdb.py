@@ -27,7 +27,7 @@ from labels_vs_sql import synthesize  # noqa: E402
 from labeler import LabelConfig  # noqa: E402
 from labeler.config import EngineConfig  # noqa: E402
 from labeler.engines import make_engine  # noqa: E402
-from labeler.labelling import plan_labels  # noqa: E402
+from labeler.labels.plan import plan_labels  # noqa: E402
 
 
 def timed(path, tax, cfg, engine) -> tuple[float, int]:

@@ -193,7 +193,7 @@ def run_demo(out_dir, seed: int = 7, embedder=None, progress: bool = True, small
     from sklearn.metrics import adjusted_mutual_info_score
 
     from .config import LabelConfig, TaxonomyConfig
-    from .labelling import plan_labels
+    from .labels.plan import plan_labels
     from .tables import normalize_interactions, normalize_items
     from .taxonomy import Taxonomy, build_taxonomy
 
@@ -270,13 +270,13 @@ def run_demo(out_dir, seed: int = 7, embedder=None, progress: bool = True, small
 
 
 def _label_plans(interactions, tax, cfg, want: str) -> dict:
-    """The demo's labels again by each DuckDB plan (the sorted pass of labeler/scan.py is taken from
+    """The demo's labels again by each DuckDB plan (the sorted pass of labeler/labels/scan.py is taken from
     1M interactions on; here it is asked for), timed, and whether both equal the labels written."""
     import time
 
     from .config import EngineConfig
     from .engines import make_engine
-    from .labelling import plan_labels
+    from .labels.plan import plan_labels
     out = {}
     for plan in ("scan", "windows"):
         started = time.perf_counter()
@@ -295,7 +295,7 @@ def _label_in_pieces(interactions, tax, cfg, written: Path, bucket_rows: int) ->
 
     from .config import EngineConfig
     from .engines import make_engine
-    from .labelling import plan_labels
+    from .labels.plan import plan_labels
     folder = written.parent / ".labels-in-pieces"
     started = time.perf_counter()
     run = plan_labels(interactions, tax, cfg, engine=make_engine(EngineConfig(bucket_rows=bucket_rows)))
@@ -387,8 +387,8 @@ def _evaluate_policies(out, scenario, tax, label_cfg, embedder) -> dict:
     two weeks; and the experiment arms' interest growth over the whole log."""
     import pandas as pd
 
-    from .metrics import evaluate, item_vectors
-    from .policies import recommend
+    from .evaluation.metrics import evaluate, item_vectors
+    from .evaluation.policies import recommend
     ev = scenario.interactions
     weeks = max(1, int((ev["ts"].max() - ev["ts"].min()).days // 7))
     at = pd.Timestamp(ev["ts"].min()).normalize() + pd.Timedelta(days=7 * max(1, min(8, weeks - 2)))

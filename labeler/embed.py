@@ -216,3 +216,14 @@ def embed_texts(texts: Sequence[str], embedder: Embedder, cache: EmbeddingCache 
     norms = np.linalg.norm(mat, axis=1, keepdims=True)
     norms[norms == 0] = 1.0
     return mat / norms, stats
+
+
+def embed_items(items, cfg: dict, embedder, progress: bool = True):
+    """Vectors of the items' text (``cfg``: a taxonomy's settings as a dict: ``text_columns``,
+    ``embedding_cache``, ``batch_size``), through the content-hash cache where the embedder allows."""
+    from .tables import item_text
+    texts = item_text(items, cfg["text_columns"]).tolist()
+    cacheable = cfg.get("embedding_cache") and getattr(embedder, "cacheable", True)
+    cache = EmbeddingCache(cfg["embedding_cache"], embedder.name) if cacheable else None
+    return embed_texts(texts, embedder, cache, batch_size=max(cfg.get("batch_size", 64), 1) * 4,
+                       progress=progress)

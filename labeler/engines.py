@@ -1,6 +1,6 @@
 """Where the relational label expressions run. Only this module knows which engine is used.
 
-The label rules (``labels.py``) are Ibis expressions; an :class:`Engine` supplies a connection,
+The label rules (``labels/rules.py``) are Ibis expressions; an :class:`Engine` supplies a connection,
 turns inputs into tables and writes results. DuckDB is the embedded default (bounded memory,
 spilling to a temp folder); Spark comes with the ``spark`` extra.
 """

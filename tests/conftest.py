@@ -43,7 +43,7 @@ def _have_spark() -> bool:
     return importlib.util.find_spec("pyspark") is not None and shutil.which("java") is not None
 
 
-# "duckdb" labels by the sorted pass where the settings allow (labeler/scan.py), "duckdb-windows" by
+# "duckdb" labels by the sorted pass where the settings allow (labeler/labels/scan.py), "duckdb-windows" by
 # the relational windows always: every engine-parametrized test holds both plans to the same results
 ENGINES = ["duckdb", "duckdb-windows", pytest.param("spark", marks=[pytest.mark.spark, pytest.mark.skipif(
     not _have_spark(), reason="PySpark or Java missing (install the 'spark' extra)")])]
@@ -66,7 +66,7 @@ def engine_name(request):
 @pytest.fixture
 def on_engine(engine_name, request, monkeypatch):
     """Make label_interactions / build_footprints / plan_labels run on the parametrized engine."""
-    import labeler.labelling as labelling
+    import labeler.labels.plan as labelling
     if engine_name == "spark":
         eng = request.getfixturevalue("spark_engine")
         monkeypatch.setattr(labelling, "make_engine", lambda *a, **k: eng)

@@ -114,7 +114,7 @@ def test_demo_small_runs_every_stage(cli, tmp_path):
     assert [r["mode"] for r in job["runs"]] == ["full", "incremental"]
     assert job["labels_equal_batch_labels"] is True
     plans = json.loads((tmp_path / "d" / "demo-summary.json").read_text())["labels"]["plans"]
-    assert plans["scan"]["same_labels"] and plans["windows"]["same_labels"]  # labeler/scan.py equals the windows
+    assert plans["scan"]["same_labels"] and plans["windows"]["same_labels"]  # labeler/labels/scan.py equals the windows
     assert "both equal the labels written: yes" in out
     assert plans["pieces"]["same_files"] and plans["pieces"]["pieces"] > 1  # pieces write one pass's bytes
     assert "pieces of users" in out and "the same files as one pass: yes" in out

@@ -204,7 +204,7 @@ def test_typed_frame_with_an_id_starting_with_whitespace_takes_the_general_path(
     """The one-pass check looks only at an id's first character: an id that starts with whitespace
     but is not blank is left to the general path, whose result it then gets."""
     from labeler.engines import make_engine
-    from labeler.intake import _COLUMNS, _arrow_schema, _clean_typed, interactions_table, rows_hash
+    from labeler.labels.intake import _COLUMNS, _arrow_schema, _clean_typed, interactions_table, rows_hash
     import pyarrow as pa
     frame = pd.DataFrame({"user_id": pd.Series(["u", " v"], dtype="str"), "item_id": pd.Series(["a", "b"], dtype="str"),
                           "engagement": [1.0, 2.0], "ts": pd.to_datetime(_TS).astype("datetime64[us, UTC]")})
@@ -221,7 +221,7 @@ def test_typed_frames_are_checked_in_one_pass_to_the_same_result(name):
     is proven clean in one pass: the same table and content hash as the general path; one bad
     value sends it to the general path, which names the column."""
     from labeler.engines import make_engine
-    from labeler.intake import _COLUMNS, _arrow_schema, _clean_typed, interactions_table, rows_hash
+    from labeler.labels.intake import _COLUMNS, _arrow_schema, _clean_typed, interactions_table, rows_hash
     import pyarrow as pa
     good = pd.DataFrame({"user_id": pd.Series(["u", "v"], dtype="str"), "item_id": pd.Series(["a", "b"], dtype="str"),
                          "engagement": [1.0, -0.0], "event_id": pd.Series(["e1", None], dtype="str"),

@@ -42,7 +42,7 @@ def write_days(ev: pd.DataFrame, folder: Path, dates) -> None:
 
 def make_config(root: Path, work: str = "work", **run) -> JobConfig:
     labels = run.pop("labels", {})
-    # scan_min_rows = 0: the job's tests run the sorted label pass (labeler/scan.py) on their small logs
+    # scan_min_rows = 0: the job's tests run the sorted label pass (labeler/labels/scan.py) on their small logs
     engine = {"memory_limit": "1GB", "threads": 2, "scan_min_rows": 0, **run.pop("engine", {})}
     return JobConfig(items=str(root / "items.parquet"), interactions=str(root / "interactions"),
                      work_dir=str(root / work), labels=labels, engine=engine,

@@ -19,7 +19,7 @@ from hypothesis import strategies as st
 
 from labeler import LabelConfig, Taxonomy
 from labeler.errors import InputError
-from labeler.labelling import Carried, plan_labels
+from labeler.labels.plan import Carried, plan_labels
 from labelcases import T0, taxonomy
 from test_labels_oracle import CONFIGS as ORACLE_CONFIGS
 

@@ -147,7 +147,7 @@ def test_label_from_writes_later_rows_only_but_earlier_ones_build_the_footprint(
 
 def test_event_types_filter_drops_and_counts_other_rows():
     """With event_types set, other rows are not interactions: dropped and counted."""
-    from labeler.labelling import plan_labels
+    from labeler.labels.plan import plan_labels
     run = plan_labels(log(("u", "k1", 0, 1.0, "e1", "play"), ("u", "b1", 1, 1.0, "e2", "preview"),
                           ("u", "b2", 2, 1.0, "e3", "play")), TAX, LabelConfig(event_types=("play",)))
     out = run.labels_frame()
@@ -157,7 +157,7 @@ def test_event_types_filter_drops_and_counts_other_rows():
 
 def test_duplicate_events_collapse_to_one_keeping_highest_engagement():
     """Rows with the same user, item, ts and event_id are one event: the highest engagement is kept."""
-    from labeler.labelling import plan_labels
+    from labeler.labels.plan import plan_labels
     run = plan_labels(log(("u", "k1", 0, 0.5, "e1"), ("u", "k1", 0, 2.0, "e1"), ("u", "b1", 1, 1.0, "e2")), TAX)
     out = run.labels_frame()
     assert rows(out, "item_id", "shaped_reward", "history_len") == [("k1", 2.0, 0), ("b1", 2.0, 1)]
@@ -205,7 +205,7 @@ def test_footprint_forgets_outside_memory():
 def test_users_over_max_user_events_are_set_aside_and_counted():
     """max_user_events=2: 'bot' has 3 interactions and gets no labels and no footprint; 'u' keeps
     hers; the summary counts the user and the interactions set aside (duplicates stay separate)."""
-    from labeler.labelling import plan_labels
+    from labeler.labels.plan import plan_labels
     events = log(("bot", "k1", 0), ("bot", "k2", 1), ("bot", "b1", 2), ("u", "k1", 0), ("u", "b1", 5),
                  ("u", "b1", 5))
     run = plan_labels(events, TAX, LabelConfig(max_user_events=2))

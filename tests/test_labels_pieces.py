@@ -15,7 +15,7 @@ import pytest
 from labeler import LabelConfig, Taxonomy
 from labeler.config import EngineConfig
 from labeler.engines import make_engine
-from labeler.labelling import plan_labels, user_pieces
+from labeler.labels.plan import plan_labels, user_pieces
 
 CONFIGS = {
     "defaults": {},
@@ -62,7 +62,8 @@ def test_a_cut_from_a_sample_of_rows_writes_the_same_bytes(tmp_path, scenario, m
     """A large log's pieces are cut from a sample of its rows (counting every user's rows of 1B
     interactions ran out of memory) and its input cut into the pieces' files a few sets a pass:
     the cut is then approximate, the files still one pass's."""
-    from labeler import engines, labelling
+    from labeler import engines
+    from labeler.labels import plan as labelling
     ev, tax = scenario
     monkeypatch.setattr(labelling, "SAMPLE_ROWS", 800)
     monkeypatch.setattr(engines, "SCATTER_SETS", 2)  # the input cut in several passes
@@ -104,7 +105,7 @@ def test_pieces_cut_row_groups_across_pieces(tmp_path, scenario, monkeypatch):
     still a single pass's, byte for byte (several row groups a file), with nothing parked left over."""
     import pyarrow.parquet as pq
 
-    from labeler import labelling
+    from labeler.labels import plan as labelling
     monkeypatch.setattr(labelling, "ROW_GROUP", 37)
     ev, tax = scenario
     plan_labels(ev, tax, engine=make_engine(EngineConfig(bucket_rows=None))).write(tmp_path / "one")
@@ -137,7 +138,7 @@ def test_many_dates_beyond_the_open_file_limit_say_what_to_do(monkeypatch):
     import resource
 
     from labeler.errors import EngineError
-    from labeler.labelling import allow_open_files
+    from labeler.labels.plan import allow_open_files
     soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
     monkeypatch.setattr(resource, "getrlimit", lambda _: (100, 1000))
     raised = []

@@ -109,7 +109,7 @@ def _plan_results(log: pd.DataFrame, cfg: LabelConfig, plan: str, cut: pd.Timest
 
     from labeler.config import EngineConfig
     from labeler.engines import make_engine
-    from labeler.labelling import Carried, plan_labels
+    from labeler.labels.plan import Carried, plan_labels
     eng = make_engine(EngineConfig(label_plan=plan, scan_min_rows=0))
     whole = plan_labels(log, TAX, cfg, engine=eng)
     assert whole.scan == (plan == "scan")
@@ -129,14 +129,14 @@ def _plan_results(log: pd.DataFrame, cfg: LabelConfig, plan: str, cut: pd.Timest
 @given(events, st.sampled_from(PLAN_CONFIGS), st.integers(0, 7), st.booleans(),
        st.sampled_from(["as_they_come", "three_at_a_time", "three_and_sequences_in_parts"]))
 def test_the_sorted_pass_equals_the_windows(evs, cfg, cut_hour, dedupe, batches):
-    """labeler/scan.py's sorted pass gives the relational windows' labels and footprints, on logs
+    """labeler/labels/scan.py's sorted pass gives the relational windows' labels and footprints, on logs
     with duplicate events (handed back to the collapse) and without, continued from state carried
     at a cut, and streamed three rows at a time with every chunk written to a scratch file, also
     with every user's sequence longer than two rows scanned in parts (cut at a change of time,
-    its counts carried by stand-in rows): the windows are the rules as written (labeler/labels.py)."""
+    its counts carried by stand-in rows): the windows are the rules as written (labeler/labels/rules.py)."""
     from unittest import mock
 
-    import labeler.scan as scan
+    import labeler.labels.scan as scan
     df = frame(evs)
     df["event_type"] = ["view" if k % 3 else "click" for k in range(len(df))]
     if dedupe:

@@ -19,7 +19,7 @@ import pandas as pd
 import pytest
 
 from labeler import Taxonomy
-from labeler.metrics import average_precision, bootstrap_mean, evaluate, ild_embedding, ild_topic, ndcg, novelty
+from labeler.evaluation.metrics import average_precision, bootstrap_mean, evaluate, ild_embedding, ild_topic, ndcg, novelty
 
 
 def _tax(topic_of: dict[str, str]) -> Taxonomy:
@@ -129,7 +129,7 @@ def test_bootstrap_intervals_cover_the_true_mean_about_95_percent():
 @pytest.fixture(scope="module")
 def demo_eval():
     from labeler.demo import generate_scenario
-    from labeler.policies import recommend
+    from labeler.evaluation.policies import recommend
     s = generate_scenario(7, n_items=600, n_users=300, weeks=8)
     tax = Taxonomy.from_categories(s.items)
     ev = s.interactions
@@ -166,7 +166,7 @@ def test_interest_growth_by_arm(demo_eval):
 
 def test_evaluation_report_escapes_and_has_no_overlapping_text(demo_eval, tmp_path):
     from labeler import report
-    from labeler.evaluation_report import figures
+    from labeler.evaluation.report import figures
     out = demo_eval.write(tmp_path / "eval")
     page = (out / "report.html").read_text(encoding="utf-8")
     assert "<b>popularity</b>" not in page and "&lt;b&gt;popularity&lt;/b&gt;" in page
@@ -219,7 +219,7 @@ def test_cli_evaluate_refuses_bad_settings_and_ranks(cli, tmp_path, extra, recs_
 def test_embedding_diversity_from_a_learned_taxonomy(hashing):
     """item_vectors embeds with the learned taxonomy's own model; ILD by embedding is then filled."""
     from labeler import TaxonomyConfig, build_taxonomy
-    from labeler.metrics import item_vectors
+    from labeler.evaluation.metrics import item_vectors
     words = ["sourdough bread", "bonsai wiring", "knitting socks"]
     items = pd.DataFrame({"item_id": [f"i{k}" for k in range(60)], "title": [f"{words[k % 3]} {k}" for k in range(60)]})
     tax = build_taxonomy(items, TaxonomyConfig(min_cluster_size=5), embedder=hashing, progress=False)

@@ -8,7 +8,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import labeler.job.outputs as outputs
-import labeler.labelling as labelling
+import labeler.labels.plan as labelling
 
 SCHEMA = pa.schema([("user_id", pa.string()), ("k", pa.int64())])
 KEYS = [("user_id", "ascending", "at_end"), ("k", "ascending", "at_end")]

@@ -13,7 +13,7 @@ import pytest
 from sklearn.metrics import adjusted_mutual_info_score, adjusted_rand_score, normalized_mutual_info_score
 
 from labeler import GateConfig, LabelConfig, Taxonomy, label_interactions
-from labeler.rollout import agreement, check_rollout
+from labeler.rollout.check import agreement, check_rollout
 
 
 def _tables_tax(assign: dict[str, str], name: str = "t") -> Taxonomy:
@@ -199,7 +199,7 @@ def test_report_escapes_text_from_the_inputs(merged_check):
 def test_report_figures_are_labelled_without_overlapping_text(merged_check):
     """Every figure has a title and axis or side labels, and no two texts overlap (drawn boxes)."""
     from labeler import report
-    from labeler.rollout_report import figures
+    from labeler.rollout.report import figures
     res, _ = merged_check
     for name, fig in figures(res).items():
         texts = [t.get_text() for t in fig.findobj(__import__("matplotlib").text.Text) if t.get_text().strip()]
@@ -211,8 +211,8 @@ def test_report_figures_are_labelled_without_overlapping_text(merged_check):
 def test_flow_figure_with_many_topics_has_no_overlaps():
     """A candidate with 60 fine topics: the flow names the 20 largest per side and sums the rest."""
     from labeler import report
-    from labeler.rollout import check_rollout as check
-    from labeler.rollout_report import flow_figure
+    from labeler.rollout.check import check_rollout as check
+    from labeler.rollout.report import flow_figure
     rng = np.random.default_rng(1)
     items = [f"i{k}" for k in range(3000)]
     a = {i: f"topic number {rng.integers(0, 60):02d} with a long name" for i in items}
@@ -249,7 +249,7 @@ def test_report_renders_in_a_browser(merged_check, tmp_path):
 
 def test_sampled_users_keep_their_full_history(movielens):
     """sample=N compares N users chosen by a hash of their id, each with every interaction."""
-    from labeler.rollout import sample_users
+    from labeler.rollout.check import sample_users
     ratings, movies = movielens
     got = sample_users(ratings, 50)
     assert got["user_id"].nunique() == 50
@@ -278,7 +278,7 @@ def test_silhouette_of_a_learned_candidate(hashing):
 def test_reordered_keywords_are_not_a_rename():
     """A topic whose name only lists its keywords in another order (or case) is 'kept', not 'renamed';
     another word is a rename."""
-    from labeler.rollout import topic_map
+    from labeler.rollout.check import topic_map
     it = pd.DataFrame({"item_id": ["a", "b"], "level": 0, "topic_id": ["t1", "t2"], "confidence": 1.0})
     def tax(n1, n2):
         return Taxonomy.from_tables(pd.DataFrame({"topic_id": ["t1", "t2"], "level": 0, "name": [n1, n2]}), it)

@@ -1,4 +1,4 @@
-"""The sort-and-scan label plan (labeler/scan.py): when it is taken, and what it does with duplicates.
+"""The sort-and-scan label plan (labeler/labels/scan.py): when it is taken, and what it does with duplicates.
 
 Its results are held to the relational windows by the golden cases, the MovieLens oracle and the
 carried-state tests (each runs on "duckdb" and "duckdb-windows", see conftest.py) and by the
@@ -11,8 +11,8 @@ import pandas as pd
 from labeler import LabelConfig
 from labeler.config import EngineConfig
 from labeler.engines import make_engine
-from labeler.labelling import plan_labels
-from labeler.scan import applies, scanned_rows
+from labeler.labels.plan import plan_labels
+from labeler.labels.scan import applies, scanned_rows
 from labelcases import T0, log, taxonomy
 
 TAX = taxonomy({"k1": [("knit", 1.0)], "k2": [("knit", 1.0)], "b1": [("bonsai", 1.0)]})
@@ -58,7 +58,7 @@ def test_chunks_beyond_the_budget_go_to_a_scratch_file(monkeypatch, tmp_path):
     """Streamed two rows at a time with no memory budget, every labelled chunk goes to a scratch
     Arrow file in temp_dir; the labels equal the windows' (read through the engine, and as Arrow
     from the file), and releasing the run removes the file."""
-    import labeler.scan as scan
+    import labeler.labels.scan as scan
     monkeypatch.setattr(scan, "BATCH_ROWS", 2)
     monkeypatch.setattr(scan, "_bytes", lambda limit: 0)
     df = log(("u", "k1", 0), ("u", "b1", 5), ("v", "k2", 5), ("u", "k2", 9), ("u", "b1", 9), ("v", "b1", 12))
@@ -96,7 +96,7 @@ def test_labels_read_unordered_equal_the_labels():
 
 def test_memory_limits_read_as_bytes():
     """DuckDB's memory_limit strings, decimal and binary units (DuckDB's documentation: "1GB", "1GiB")."""
-    from labeler.scan import _bytes
+    from labeler.labels.scan import _bytes
     assert _bytes("4GB") == 4 * 10**9 and _bytes("500MiB") == 500 * 2**20 and _bytes("1.5 GB") == 1_500_000_000
     assert _bytes("lots") == 2**30
 
@@ -107,7 +107,7 @@ def test_rows_taken_back_by_row_id_equal_a_take():
     a copy otherwise (rows filtered out); either way the rows of ``Table.take``."""
     import numpy as np
     import pyarrow as pa
-    from labeler.labelling import _rows_at
+    from labeler.labels.plan import _rows_at
     table = pa.table({"n": np.arange(200_000), "s": pa.array(np.arange(200_000).astype(str))})
     blocks = [np.arange(a, min(a + 65_536, 200_000)) for a in range(0, 200_000, 65_536)]
     rng = np.random.default_rng(7)
@@ -126,7 +126,7 @@ def test_a_user_longer_than_a_chunk_is_scanned_in_parts():
 
     import numpy as np
 
-    import labeler.scan as scan
+    import labeler.labels.scan as scan
     tax = taxonomy({"a": [("x", 1.0)], "b": [("y", 1.0)], "c": [("x", 0.9), ("z", 0.8)], "d": [("z", 1.0)]},
                    parents={"x": "p", "y": "p", "z": "q"}, level=1)
     rng = np.random.default_rng(3)

@@ -11,7 +11,7 @@ import pytest
 
 from conftest import _have_spark
 from labeler import LabelConfig, Taxonomy
-from labeler.labelling import plan_labels
+from labeler.labels.plan import plan_labels
 
 pytestmark = [pytest.mark.spark, pytest.mark.skipif(not _have_spark(), reason="PySpark or Java missing")]
 

@@ -28,12 +28,12 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
-    from ..metrics import evaluate
+    from ..evaluation.metrics import evaluate
     cfg = job_config(args)
     tax = Taxonomy.load(args.taxonomy)
     vectors = None
     if args.items:
-        from ..metrics import item_vectors
+        from ..evaluation.metrics import item_vectors
         vectors = item_vectors(read_table(Path(args.items)), tax, cfg.taxonomy)
     res = evaluate(read_table(Path(args.recs)), read_table(Path(args.interactions)), tax,
                    k=args.k, group_by=args.group_by, control=args.control, horizon_days=args.horizon_days,

@@ -2,7 +2,7 @@
 from __future__ import annotations
 
 from ..engines import make_engine
-from ..labelling import plan_labels
+from ..labels.plan import plan_labels
 from ..taxonomy import Taxonomy
 from ._options import add_common, add_input, job_config, show_progress
 

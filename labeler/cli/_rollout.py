@@ -3,7 +3,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from ..rollout import check_rollout, check_value
+from ..rollout.check import check_rollout, check_value
 from ..tables import read_table
 from ..taxonomy import Taxonomy
 from ._options import add_common, add_input, job_config

@@ -22,7 +22,7 @@ import pyarrow.parquet as pq
 
 from ..config import InputConfig
 from ..errors import InputError, LabelerError
-from ..intake import files_hash, interactions_schema
+from ..labels.intake import files_hash, interactions_schema
 from ..tables import normalize_interactions, read_table
 from . import failpoints
 

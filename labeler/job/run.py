@@ -35,15 +35,15 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from .. import __version__
 from ..config import JobConfig
 from ..engines import make_engine, quiet
 from ..errors import ConfigError, EngineError, InputError, RejectedError
-from ..intake import Staged as StagedInput
-from ..intake import parquet_rows
-from ..labelling import FOOTPRINTS_SCHEMA, Carried, plan_labels
+from ..labels.intake import Staged as StagedInput
+from ..labels.intake import parquet_rows
+from ..labels.plan import FOOTPRINTS_SCHEMA, Carried, plan_labels
 from ..tables import normalize_items, read_table
 from ..taxonomy import Taxonomy, build_taxonomy
+from ..version import __version__
 from . import failpoints
 from .lock import RunLock
 from .outputs import USERS_SCHEMA, GenerationWriter, age_footprints, write_table
@@ -378,7 +378,7 @@ class _Run:
         """Build a candidate taxonomy (stable ids from the current one), check it against the
         current one on the staged interactions, and return (candidate, register) if the gate
         passes; otherwise keep the current taxonomy and record why."""
-        from ..rollout import check_rollout, check_value
+        from ..rollout.check import check_rollout, check_value
         cfg = self.cfg
         items, hashes, category = self._items_now
         if category is not None:
@@ -600,7 +600,7 @@ class _Run:
         a time (each piece in memory), write each piece as a generation of its own, then join them
         in user order into ``gen``: the same bytes as one pass, with memory bounded by the piece."""
         from tqdm import tqdm
-        from ..labelling import cut_users, rows_in
+        from ..labels.plan import cut_users, rows_in
         ev = eng.read_parquet(files)
         ranges = cut_users(eng, ev, total, limit)
         log.info("full run of %d interactions in %d pieces of about %d", total, len(ranges), limit)
@@ -645,7 +645,7 @@ class _Run:
         ev = eng.read_parquet(files)
         if users is not None:
             ev = ev.filter(ev.user_id.isin(eng.table(pa.table({"user_id": users}), "users").user_id))
-        # the row count chooses DuckDB's label plan (labeler.scan: the sorted pass from engine.scan_min_rows
+        # the row count chooses DuckDB's label plan (labeler.labels.scan: the sorted pass from engine.scan_min_rows
         # on); other engines have one plan, so they are spared the count
         rows = 0
         if eng.name == "duckdb":

@@ -25,10 +25,10 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from .. import __version__
 from ..config import LabelConfig
 from ..errors import InputError
-from ..intake import rank_item_topics
+from ..labels.intake import rank_item_topics
+from ..version import __version__
 from .layout import FORMAT, PAGE_SIZE, check_file, clean, current_name, file_record, fsync_dir, read_manifest, \
     shard_of, to_us, tombstones, user_digest
 
@@ -68,7 +68,7 @@ def publish_store(path, footprints, taxonomy, config: LabelConfig | None = None,
     if it raises, the current snapshot stays current (the job publishes while it writes its
     outputs, and switches only once they are written).
     """
-    from ..labelling import LabelRun
+    from ..labels.plan import LabelRun
     cfg = config or LabelConfig()
     if isinstance(footprints, LabelRun):
         run = footprints

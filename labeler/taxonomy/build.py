@@ -19,32 +19,17 @@ import logging
 import numpy as np
 import pandas as pd
 
-from .. import __version__
 from ..config import TaxonomyConfig
 from ..distilled import MEAN_ARRAY, TABLE_ARRAY, DistilledEncoder
-from ..embed import EmbeddingCache, SentenceEmbedder, embed_texts
+from ..embed import EmbeddingCache, SentenceEmbedder, embed_items
 from ..errors import ConfigError
 from ..tables import item_text, normalize_items
+from ..version import __version__
 from .ids import format_id, id_number, match_topics, members_by_topic
-from .model import FORMAT, Taxonomy, hash_strings, items_empty_text, placement_rows
+from .model import FORMAT, Taxonomy, hash_strings, items_empty_text, place, placement_rows
 from .names import class_tfidf_keywords, distinct_names
 
 log = logging.getLogger(__name__)
-
-
-def embed_items(items: pd.DataFrame, cfg: dict, embedder, progress: bool = True):
-    texts = item_text(items, cfg["text_columns"]).tolist()
-    cacheable = cfg.get("embedding_cache") and getattr(embedder, "cacheable", True)
-    cache = EmbeddingCache(cfg["embedding_cache"], embedder.name) if cacheable else None
-    return embed_texts(texts, embedder, cache, batch_size=max(cfg.get("batch_size", 64), 1) * 4,
-                       progress=progress)
-
-
-def place(vectors: np.ndarray, centroids: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Nearest fine centroid and its cosine similarity (clipped to [0, 1]) for each unit vector."""
-    sims = vectors @ centroids.T
-    best = np.argmax(sims, axis=1)
-    return best, np.clip(sims[np.arange(len(vectors)), best], 0.0, 1.0)
 
 
 def _unit(x: np.ndarray) -> np.ndarray:

@@ -20,10 +20,10 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from .. import __version__
 from ..distilled import MEAN_ARRAY, TABLE_ARRAY, TOKENIZER_FILE
 from ..errors import ArtifactError, InputError
 from ..tables import normalize_items
+from ..version import __version__
 
 log = logging.getLogger(__name__)
 
@@ -35,6 +35,13 @@ TOPICS_SCHEMA = pa.schema([("topic_id", pa.string()), ("level", pa.int32()), ("p
                            ("size", pa.int64()), ("first_version", pa.string())])
 ITEM_TOPICS_SCHEMA = pa.schema([("item_id", pa.string()), ("level", pa.int32()),
                                 ("topic_id", pa.string()), ("confidence", pa.float64())])
+
+
+def place(vectors: np.ndarray, centroids: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Nearest fine centroid and its cosine similarity (clipped to [0, 1]) for each unit vector."""
+    sims = vectors @ centroids.T
+    best = np.argmax(sims, axis=1)
+    return best, np.clip(sims[np.arange(len(vectors)), best], 0.0, 1.0)
 
 
 def sha256_file(path: Path) -> str:
@@ -209,7 +216,7 @@ class Taxonomy:
             self.last_assign_stats = {"items": int(len(items)),
                                       "unplaced": int(len(items) - out["item_id"].nunique())}
             return out
-        from .build import place, embed_items
+        from ..embed import embed_items
         if embedder is not None and embedder.name != self.manifest["model"]:
             raise ArtifactError(f"taxonomy {self.version[:12]} was built with {self.manifest['model']!r}; items "
                                 f"embedded with {embedder.name!r} would be placed in another vector space. "

@@ -1,6 +1,6 @@
 """Running the label rules: the public ``label_interactions`` / ``build_footprints`` and the run summary.
 
-A :class:`LabelRun` plans the expressions of :mod:`labeler.labels` on one engine once, so the
+A :class:`LabelRun` plans the expressions of :mod:`labeler.labels.rules` on one engine once, so the
 CLI and the job get labels, footprints and the summary from one pass over the inputs.
 """
 from __future__ import annotations
@@ -24,18 +24,18 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from . import __version__
-from .config import InputConfig, LabelConfig
-from .engines import Engine, make_engine, sums_digest
-from .errors import EngineError
+from ..config import InputConfig, LabelConfig
+from ..engines import Engine, make_engine, sums_digest
+from ..errors import EngineError
+from ..tables import FOOTPRINTS_COLUMNS, LABEL_VALUES, LABELS_COLUMNS, Intake
+from ..version import __version__
 from .intake import Staged, interactions_table, item_topics_table
 from .intake import _COLUMNS as _INPUT_COLUMNS
-from .labels import INTERACTION_COLUMNS, carried_rows, continue_history, continued_history, each_interaction_once, \
+from .rules import INTERACTION_COLUMNS, carried_rows, continue_history, continued_history, each_interaction_once, \
     footprint_rows, heavy_users, known_transitions, label_rows, prepare, topic_rows, touched_carried, user_history, \
     with_carried, with_known_topics, with_support
 from .scan import applies as scan_applies
 from .scan import scanned_rows
-from .tables import FOOTPRINTS_COLUMNS, LABEL_VALUES, LABELS_COLUMNS, Intake
 
 log = logging.getLogger(__name__)
 
@@ -238,7 +238,7 @@ class LabelRun:
     _with_all_carried: Any = None  # with carried state: the topic rows plus stand-ins of every carried topic
     _new_rows: Any = None  # with carried state: the new events' topic rows, cached
     _touched_carried: Any = None  # with carried state, no memory: the carried rows of the topics they name, cached
-    scan: bool = False     # labels by the sort-and-scan plan (labeler.scan)
+    scan: bool = False     # labels by the sort-and-scan plan (labeler.labels.scan)
     _raw_rows: Any = None  # for the scan plan: the topic rows before the duplicate collapse
     _scanned: Any = None   # for the scan plan: where its labels are held (scan.Scanned)
 
@@ -254,7 +254,7 @@ class LabelRun:
         self._labels = value
 
     def _scan_labels(self, hold: bool = False):
-        """The labels by one sorted pass (:mod:`labeler.scan`), labelled chunk by chunk as the pass
+        """The labels by one sorted pass (:mod:`labeler.labels.scan`), labelled chunk by chunk as the pass
         goes: over the topic rows as they came when nothing has read them yet and they hold no
         duplicate interaction, else over the collapsed (shared) ones."""
         until = self.carried_until_us
@@ -772,7 +772,7 @@ def plan_labels(interactions, taxonomy, config: LabelConfig | None = None, *,
     prepared, heavy = prepare(ev, cfg), None
     if cfg.max_user_events is not None:  # one user's history is one ordered sequence: bots stall a task
         if carried is not None:
-            from .errors import ConfigError
+            from ..errors import ConfigError
             raise ConfigError("labels.max_user_events cannot be continued from carried state: a user "
                               "crossing the limit loses every earlier label. Label the whole history.")
         heavy = heavy_users(prepared, cfg).cache()
@@ -782,7 +782,7 @@ def plan_labels(interactions, taxonomy, config: LabelConfig | None = None, *,
         state, until = carried.tables(eng), carried.watermark_us
         first = eng.to_pandas(ev.aggregate(m=ev.ts_us.min()))["m"].iloc[0]
         if first is not None and not pd.isna(first) and int(first) <= until:
-            from .errors import InputError
+            from ..errors import InputError
             raise InputError(f"an event at {_iso_us(int(first))} is not after the carried watermark "
                              f"{_iso_us(until)}.", source=intake.source, column="ts",
                              hint="Continue from carried state only with later events; label the users "

@@ -1,7 +1,7 @@
 """The sort-and-scan plan: the label windows computed by one ordered pass instead of two windows.
 
 Without a memory window the rules read a user's history at level L only through running counts
-in time order (DESIGN.md, label rules 2-4; :mod:`labeler.labels` writes them as windows):
+in time order (DESIGN.md, label rules 2-4; :mod:`labeler.labels.rules` writes them as windows):
 
 - ``known``: the topic's qualifying rows strictly before t reach ``min_support``;
 - ``history_len``: the carried count plus the user's interactions strictly before t;
@@ -14,7 +14,7 @@ plan sorts the rows twice (once per window), and its duplicate collapse is a has
 every interaction; here the rows are sorted by the whole interaction key as well, so duplicates
 lie side by side, and a log that has any is handed back to the relational collapse (a run with
 duplicates costs both; exactness never depends on the check). The label projection that follows
-(:func:`labeler.labels.label_rows`) is the relational one, unchanged, run on each chunk of the
+(:func:`labeler.labels.rules.label_rows`) is the relational one, unchanged, run on each chunk of the
 pass as it is scanned.
 
 DuckDB only (the sorted rows stream through this process in Arrow batches, each chunk of whole
@@ -33,7 +33,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.dataset as ds
 
-from .config import LabelConfig
+from ..config import LabelConfig
 
 ORDER = ("user_id", "level", "ts_us", "item_id", "event_id", "pos")
 BATCH_ROWS = 1 << 20  # sorted rows fetched at a time
@@ -116,7 +116,7 @@ def _same(col: pa.ChunkedArray | pa.Array, nulls_equal: bool) -> np.ndarray:
 def scanned_rows(engine, rows, cfg: LabelConfig, then=None, hold: bool = False):
     """``with_known_topics(with_support(rows))`` by one sorted pass, as an engine table; None when
     ``rows`` hold duplicate interactions (same user, item, time and event id), which only the
-    relational collapse may merge. ``rows`` are topic rows (:func:`labeler.labels.topic_rows`,
+    relational collapse may merge. ``rows`` are topic rows (:func:`labeler.labels.rules.topic_rows`,
     with carried stand-ins or not). With ``then`` (a function of an Arrow table that reads each
     interaction's rows alone, such as the label projection), the table holds ``then`` of the
     scanned rows instead: it is applied to each chunk as the chunk is scanned.
@@ -189,7 +189,7 @@ def _stand_ins(part: pa.Table, rest: pa.Table, cfg: LabelConfig) -> pa.Table:
     topic, as many qualifying rows as ``part`` holds (at most ``min_support``: beyond it a count no
     longer changes ``known``), with no item, one microsecond before ``rest``. Scanned ahead of
     ``rest`` they give its rows the topics known and the known-topic count that ``part`` left,
-    as the carried stand-ins of an incremental run do (:func:`labeler.labels.carried_rows`);
+    as the carried stand-ins of an incremental run do (:func:`labeler.labels.rules.carried_rows`);
     ``rest``'s ``history_len`` offset takes ``part``'s interactions (:func:`_more_history`)."""
     counts = pc.value_counts(part["topic_id"].filter(pa.array(_qualifying(part, cfg))))
     repeat = np.minimum(counts.field("counts").to_numpy(), int(cfg.min_support))
@@ -222,7 +222,7 @@ def _leading(t: pa.Table, tail: pa.Table) -> int:
 
 
 def _qualifying(t: pa.Table, cfg: LabelConfig) -> np.ndarray:
-    """Rows that count towards their topic's support (``labeler.labels.qualifies``)."""
+    """Rows that count towards their topic's support (``labeler.labels.rules.qualifies``)."""
     q = pc.is_valid(t["topic_id"]).to_numpy(zero_copy_only=False)
     if cfg.footprint_from == "engaged":
         q &= pc.fill_null(pc.greater_equal(t["engagement"], cfg.engaged_min), False).to_numpy(zero_copy_only=False)

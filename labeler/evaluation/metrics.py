@@ -33,9 +33,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .config import InputConfig, LabelConfig
-from .errors import ConfigError, InputError
-from .tables import normalize_ids, normalize_interactions, normalize_timestamps, require_columns, Intake
+from ..config import InputConfig, LabelConfig
+from ..errors import ConfigError, InputError
+from ..tables import normalize_ids, normalize_interactions, normalize_timestamps, require_columns, Intake
 
 LIST_METRICS = ("precision", "recall", "map", "ndcg", "ild_topic", "ild_embedding", "novelty",
                 "unexpectedness", "serendipity")
@@ -106,10 +106,10 @@ def bootstrap_mean(sums: np.ndarray, counts: np.ndarray, n_boot: int = 1000, see
 def item_vectors(items: pd.DataFrame, tax, taxonomy_config=None, embedder=None) -> dict:
     """{item_id: unit vector} for the embedding diversity: the learned taxonomy's own model and
     settings, or the configured model for an editorial taxonomy (both through the embedding cache)."""
-    from .config import TaxonomyConfig
-    from .embed import SentenceEmbedder
-    from .tables import normalize_items
-    from .taxonomy.build import embed_items
+    from ..config import TaxonomyConfig
+    from ..embed import SentenceEmbedder
+    from ..tables import normalize_items
+    from ..embed import embed_items
     if tax.kind == "learned":
         cfg = tax.manifest["config"]
         embedder = embedder or tax.embedder()
@@ -141,7 +141,7 @@ class Evaluation:
             self.growth.to_csv(out / "growth.csv", index=False)
         if self.cohorts is not None:
             self.cohorts.to_csv(out / "cohorts.csv", index=False)
-        from .evaluation_report import render
+        from .report import render
         (out / ".report.html.tmp").write_text(render(self), encoding="utf-8")
         os.replace(out / ".report.html.tmp", out / "report.html")
         (out / ".summary.json.tmp").write_text(json.dumps(self.summary, indent=2, sort_keys=True, default=float) + "\n")
@@ -229,7 +229,7 @@ def evaluate(recs: pd.DataFrame, interactions: pd.DataFrame, tax, k: int = 10, *
     compared with. With an ``arm`` column in ``interactions`` and ``growth``, interest growth by arm
     and week and activity-cohort movement are added.
     """
-    from .labelling import plan_labels
+    from ..labels.plan import plan_labels
     cfg = label_config or LabelConfig()
     _check_settings(k, horizon_days, level, tax)
     level = max(tax.levels) if level is None else level
@@ -242,7 +242,7 @@ def evaluate(recs: pd.DataFrame, interactions: pd.DataFrame, tax, k: int = 10, *
     run = plan_labels(ev, tax, cfg)
 
     # topics of items at the level: primary (for diversity) and all (for unexpectedness)
-    from .intake import rank_item_topics
+    from ..labels.intake import rank_item_topics
     it = rank_item_topics(tax.item_topics[tax.item_topics["level"] == level])
     it = it[it["topic_id"].notna() & (it["valid_from_us"] == it.groupby("item_id")["valid_from_us"].transform("max"))]
     primary = it[it["pos"] == 0].set_index("item_id")["topic_id"]

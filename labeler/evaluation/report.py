@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from . import report
+from .. import report
 
 SHOWN = ("precision", "recall", "map", "ndcg", "ild_topic", "novelty", "unexpectedness", "serendipity")
 
@@ -82,7 +82,7 @@ def figures(ev) -> dict:
 
 
 def render(ev) -> str:
-    from .report import esc, image, table
+    from ..report import esc, image, table
     with report.plain_text():  # names from the inputs are text, not math markup
         figs = figures(ev)
     pngs = {k: report.figure_png(f) for k, f in figs.items()}

@@ -21,9 +21,9 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from .config import InputConfig, LabelConfig
-from .errors import InputError
-from .tables import INTERACTIONS_REQUIRED, Intake, normalize_interactions, require_columns
+from ..config import InputConfig, LabelConfig
+from ..errors import InputError
+from ..tables import INTERACTIONS_REQUIRED, Intake, normalize_interactions, require_columns
 
 log = logging.getLogger(__name__)
 
@@ -65,7 +65,7 @@ def interactions_table(engine, data, input_config: InputConfig | None = None,
         if lazy is not None:
             lazy[1].content_hash = files_hash(path)
             return lazy
-        from .tables import read_table
+        from ..tables import read_table
         data = read_table(path)
     source = source or "interactions"
     if isinstance(data, pa.Table):
@@ -175,7 +175,7 @@ def _lazy_parquet(engine, path: Path, cfg: InputConfig, source: str):
         raise InputError(f"could not be read as Parquet ({type(exc).__name__}: {exc}).", source=source,
                          hint="Check the file is a complete Parquet file.") from None
     names = schema.names
-    from .tables import _duplicate_columns
+    from ..tables import _duplicate_columns
     _duplicate_columns(names, source)
     require_columns(pd.DataFrame(columns=names), INTERACTIONS_REQUIRED, source)
     for c in ("user_id", "item_id", "event_id", "event_type", "arm"):
@@ -290,7 +290,7 @@ def item_topics_table(engine, tax, cfg: LabelConfig):
     levels = cfg.levels if cfg.levels is not None else tuple(tax.levels)
     unknown = sorted(set(levels) - set(tax.levels))
     if unknown:
-        from .errors import ConfigError
+        from ..errors import ConfigError
         raise ConfigError(f"labels.levels {list(levels)} names level(s) {unknown} that taxonomy "
                           f"{tax.version[:12]} does not have (it has {tax.levels}).")
     it = it[it["level"].isin(levels)]

@@ -31,8 +31,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .config import GateConfig, LabelConfig
-from .intake import rank_item_topics
+from ..config import GateConfig, LabelConfig
+from ..labels.intake import rank_item_topics
 
 UNPLACED = "(unplaced)"
 KEEP, PART = 0.5, 0.2
@@ -57,7 +57,7 @@ class RolloutResult:
         out.mkdir(parents=True, exist_ok=True)
         self.topic_map.to_csv(out / "topic_map.csv", index=False)
         self.flips.to_csv(out / "label_flips.csv", index=False)
-        from .rollout_report import render
+        from .report import render
         (out / ".report.html.tmp").write_text(render(self), encoding="utf-8")
         os.replace(out / ".report.html.tmp", out / "report.html")
         tmp = out / ".summary.json.tmp"
@@ -177,7 +177,7 @@ def label_impact(current, candidate, interactions, label_config: LabelConfig | N
                  window_days: float | None = None, engine=None) -> tuple[dict[str, Any], pd.DataFrame]:
     """Labels under both taxonomies (same settings), compared on the interactions of the last
     ``window_days`` (all when None), each user's full prior history counted."""
-    from .labelling import plan_labels
+    from ..labels.plan import plan_labels
     cfg = label_config or LabelConfig()
     keys = ["user_id", "item_id", "ts", "event_id", "level"]
     runs = [plan_labels(interactions, tax, cfg, engine=engine) for tax in (current, candidate)]
@@ -220,14 +220,14 @@ def sample_users(interactions, n: int):
     """The interactions of ``n`` users chosen by the SHA-256 of their id (the same users every
     time), each with their full history."""
     import hashlib
-    from .intake import Staged
+    from ..labels.intake import Staged
     if isinstance(interactions, Staged):
         t = interactions.table
         users = sorted(t.select("user_id").distinct().execute()["user_id"],
                        key=lambda u: hashlib.sha256(str(u).encode()).hexdigest())[:n]
         return dataclasses.replace(interactions, table=t.filter(t.user_id.isin(users)))
     if isinstance(interactions, (str, os.PathLike)):
-        from .tables import read_table
+        from ..tables import read_table
         interactions = read_table(Path(interactions))
     users = sorted(interactions["user_id"].astype(str).unique(),
                    key=lambda u: hashlib.sha256(u.encode()).hexdigest())[:n]
@@ -240,8 +240,8 @@ def silhouette(tax, items: pd.DataFrame, level: int, sample: int = 2000, seed: i
     if tax.kind != "learned" or items is None:
         return None
     from sklearn.metrics import silhouette_score
-    from .taxonomy.build import embed_items
-    from .tables import normalize_items
+    from ..embed import embed_items
+    from ..tables import normalize_items
     prim = _primary(tax, level)
     its, _ = normalize_items(items, text_columns=tuple(tax.manifest["config"]["text_columns"]))
     its = its[its["item_id"].isin(prim.index)]
@@ -267,7 +267,7 @@ def check_rollout(current, candidate, interactions, config: GateConfig | None = 
     gate = config or GateConfig()
     levels = sorted(set(current.levels) & set(candidate.levels))
     if not levels:
-        from .errors import ConfigError
+        from ..errors import ConfigError
         raise ConfigError(f"the taxonomies share no level (current {current.levels}, candidate {candidate.levels}).")
     if sample is not None:
         interactions = sample_users(interactions, sample)
@@ -294,7 +294,7 @@ def check_rollout(current, candidate, interactions, config: GateConfig | None = 
                            for (_, t), n in sizes.sort_values(ascending=False).head(5).items()]}
     judged = [lv for lv in levels if gate.levels is None or lv in gate.levels]
     if not judged:
-        from .errors import ConfigError
+        from ..errors import ConfigError
         raise ConfigError(f"gate.levels {list(gate.levels)} names no level both taxonomies have ({levels}).")
     checks, warnings = {}, []
     for lv in judged:

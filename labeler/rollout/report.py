@@ -9,8 +9,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from . import report
-from .tables import LABEL_VALUES
+from .. import report
+from ..tables import LABEL_VALUES
 
 STATUS_COLOURS = {"kept": "#4c78a8", "renamed": "#72b7b2", "split": "#f58518", "merged": "#e45756",
                   "retired": "#9d755d", "new": "#54a24b"}
@@ -147,7 +147,7 @@ def figures(result) -> dict[str, object]:
 
 def render(result) -> str:
     """report.html of a rollout check, with its figures embedded."""
-    from .report import esc, image, table
+    from ..report import esc, image, table
     s = result.summary
     with report.plain_text():  # names from the inputs are text, not math markup
         figs = figures(result)

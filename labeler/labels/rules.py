@@ -35,7 +35,7 @@ from __future__ import annotations
 import ibis
 import ibis.expr.types as ir
 
-from .config import LabelConfig
+from ..config import LabelConfig
 
 INTERACTION_KEY = ("user_id", "item_id", "ts_us", "event_id")
 
@@ -52,7 +52,7 @@ def prepare(ev: ir.Table, cfg: LabelConfig, collapse: bool = True) -> ir.Table:
     ``ev`` has user_id, item_id, ts, ts_us, engagement, event_id, event_type. Duplicates (same
     user, item, ts and event_id) become one row with the highest engagement and the smallest
     event_type and arm. ``collapse=False`` leaves them (the same columns): for a plan that proves
-    there are none (:mod:`labeler.scan`), on which the collapse changes nothing.
+    there are none (:mod:`labeler.labels.scan`), on which the collapse changes nothing.
     """
     if cfg.event_types is not None:
         ev = ev.filter(ev.event_type.isin(list(cfg.event_types)))
