@@ -15,7 +15,8 @@ import pytest
 from labeler import LabelConfig, Taxonomy
 from labeler.config import EngineConfig
 from labeler.engines import make_engine
-from labeler.labels.plan import plan_labels, user_pieces
+from labeler.labels.pieces import user_pieces
+from labeler.labels.plan import plan_labels
 
 CONFIGS = {
     "defaults": {},
@@ -63,9 +64,9 @@ def test_a_cut_from_a_sample_of_rows_writes_the_same_bytes(tmp_path, scenario, m
     interactions ran out of memory) and its input cut into the pieces' files a few sets a pass:
     the cut is then approximate, the files still one pass's."""
     from labeler import engines
-    from labeler.labels import plan as labelling
+    from labeler.labels import pieces
     ev, tax = scenario
-    monkeypatch.setattr(labelling, "SAMPLE_ROWS", 800)
+    monkeypatch.setattr(pieces, "SAMPLE_ROWS", 800)
     monkeypatch.setattr(engines, "SCATTER_SETS", 2)  # the input cut in several passes
     cfg = LabelConfig(min_support=2, memory_days=7)
     plan_labels(ev, tax, cfg, engine=make_engine(EngineConfig(bucket_rows=None))).write(tmp_path / "one")
@@ -73,7 +74,7 @@ def test_a_cut_from_a_sample_of_rows_writes_the_same_bytes(tmp_path, scenario, m
     many.write(tmp_path / "many")
     assert many.written["pieces"] > 3
     assert _files(tmp_path / "one") == _files(tmp_path / "many")
-    sampled = labelling.cut_users(many.engine, many.ev, len(ev), 900)
+    sampled = pieces.cut_users(many.engine, many.ev, len(ev), 900)
     assert sum(p.rows for p in sampled) != len(ev)  # estimates from the sample, not counts
 
 
@@ -105,8 +106,8 @@ def test_pieces_cut_row_groups_across_pieces(tmp_path, scenario, monkeypatch):
     still a single pass's, byte for byte (several row groups a file), with nothing parked left over."""
     import pyarrow.parquet as pq
 
-    from labeler.labels import plan as labelling
-    monkeypatch.setattr(labelling, "ROW_GROUP", 37)
+    from labeler.labels import files
+    monkeypatch.setattr(files, "ROW_GROUP", 37)
     ev, tax = scenario
     plan_labels(ev, tax, engine=make_engine(EngineConfig(bucket_rows=None))).write(tmp_path / "one")
     plan_labels(ev, tax, engine=make_engine(EngineConfig(bucket_rows=300))).write(tmp_path / "many")
@@ -138,7 +139,7 @@ def test_many_dates_beyond_the_open_file_limit_say_what_to_do(monkeypatch):
     import resource
 
     from labeler.errors import EngineError
-    from labeler.labels.plan import allow_open_files
+    from labeler.labels.files import allow_open_files
     soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
     monkeypatch.setattr(resource, "getrlimit", lambda _: (100, 1000))
     raised = []

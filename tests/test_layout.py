@@ -135,3 +135,17 @@ def test_imports_follow_the_flow_one_way(module):
 def test_every_module_has_a_group():
     """A new top-level module must be placed in the flow (FOUNDATION or a stage package)."""
     assert sorted({_group(m) for m in _modules()} - set(RANKS) - {"root"}) == []
+
+
+def test_the_readme_layout_names_every_part_of_the_tree():
+    """README's Layout block names every top-level module and folder of labeler/, and every module
+    of the three stage packages that were flat files before (labels/, rollout/, evaluation/)."""
+    readme = (ROOT.parent / "README.md").read_text()
+    block = readme[readme.index("## Layout"):]
+    block = block[block.index("```"):]
+    block = block[:block.index("```", 3)]
+    wanted = [p.name + ("/" if p.is_dir() else "") for p in ROOT.iterdir()
+              if p.name not in ("__init__.py", "__pycache__") and (p.suffix == ".py" or (p / "__init__.py").exists())]
+    wanted += [p.name for stage in ("labels", "rollout", "evaluation") for p in (ROOT / stage).glob("*.py")
+               if p.name != "__init__.py"]
+    assert [w for w in sorted(wanted) if w not in block] == []

@@ -8,7 +8,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import labeler.job.outputs as outputs
-import labeler.labels.plan as labelling
+import labeler.labels.files as files
 
 SCHEMA = pa.schema([("user_id", pa.string()), ("k", pa.int64())])
 KEYS = [("user_id", "ascending", "at_end"), ("k", "ascending", "at_end")]
@@ -19,7 +19,7 @@ def assert_merge_is_one_write(tmp, old_t, new_t, drop, aged, expected, group) ->
     equal one write of ``expected``."""
     mp = pytest.MonkeyPatch()
     mp.setattr(outputs, "ROW_GROUP", group)
-    mp.setattr(labelling, "ROW_GROUP", group)
+    mp.setattr(files, "ROW_GROUP", group)
     try:
         pq.write_table(old_t, tmp / "prev.parquet", row_group_size=group)
         n = outputs.write_merged(tmp / "prev.parquet", drop, new_t, aged, old_t.schema, tmp / "out.parquet",
@@ -27,7 +27,7 @@ def assert_merge_is_one_write(tmp, old_t, new_t, drop, aged, expected, group) ->
     finally:
         mp.undo()
     pq.write_table(expected, tmp / "expected.parquet", row_group_size=group,
-                   **labelling.parquet_options(expected.schema))
+                   **files.parquet_options(expected.schema))
     assert n == expected.num_rows
     assert (tmp / "out.parquet").read_bytes() == (tmp / "expected.parquet").read_bytes()
 

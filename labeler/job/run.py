@@ -40,7 +40,8 @@ from ..engines import make_engine, quiet
 from ..errors import ConfigError, EngineError, InputError, RejectedError
 from ..labels.intake import Staged as StagedInput
 from ..labels.intake import parquet_rows
-from ..labels.plan import FOOTPRINTS_SCHEMA, Carried, plan_labels
+from ..labels.files import FOOTPRINTS_SCHEMA
+from ..labels.plan import Carried, plan_labels
 from ..tables import normalize_items, read_table
 from ..taxonomy import Taxonomy, build_taxonomy
 from ..version import __version__
@@ -600,7 +601,7 @@ class _Run:
         a time (each piece in memory), write each piece as a generation of its own, then join them
         in user order into ``gen``: the same bytes as one pass, with memory bounded by the piece."""
         from tqdm import tqdm
-        from ..labels.plan import cut_users, rows_in
+        from ..labels.pieces import cut_users, rows_in
         ev = eng.read_parquet(files)
         ranges = cut_users(eng, ev, total, limit)
         log.info("full run of %d interactions in %d pieces of about %d", total, len(ranges), limit)

@@ -8,7 +8,8 @@ continued from :class:`~labeler.labels.plan.Carried` state for incremental runs.
 
 Modules: ``rules`` (the label rules as Ibis expressions, written once for every engine),
 ``intake`` (inputs read, checked and content-hashed), ``scan`` (the sort-and-scan plan on DuckDB),
-``plan`` (``plan_labels``, the run, its files and pieces).
+``plan`` (``plan_labels``, the run and its carried state), ``files`` (the output files, the same
+bytes however they are fed), ``pieces`` (a large run one range of users at a time).
 """
 from .plan import Carried, LabelRun, build_footprints, label_interactions, plan_labels
 

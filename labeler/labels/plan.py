@@ -13,24 +13,23 @@ import logging
 import os
 import shutil
 import uuid
-from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
-from typing import Any, NamedTuple
+from typing import Any
 
 import ibis
 import numpy as np
 import pandas as pd
 import pyarrow as pa
-import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from ..config import InputConfig, LabelConfig
 from ..engines import Engine, make_engine, sums_digest
-from ..errors import EngineError
-from ..tables import FOOTPRINTS_COLUMNS, LABEL_VALUES, LABELS_COLUMNS, Intake
+from ..tables import LABEL_VALUES, Intake
 from ..version import __version__
-from .intake import Staged, interactions_table, item_topics_table
-from .intake import _COLUMNS as _INPUT_COLUMNS
+from .files import CONTENT_COLUMNS, LABELS_SCHEMA, SORT_KEYS, finish_footprints, finish_labels, \
+    output_compression, write_by_date, write_whole
+from .intake import interactions_table, item_topics_table
+from .pieces import write_in_pieces
 from .rules import INTERACTION_COLUMNS, carried_rows, continue_history, continued_history, each_interaction_once, \
     footprint_rows, heavy_users, known_transitions, label_rows, prepare, topic_rows, touched_carried, user_history, \
     with_carried, with_known_topics, with_support
@@ -38,144 +37,6 @@ from .scan import applies as scan_applies
 from .scan import scanned_rows
 
 log = logging.getLogger(__name__)
-
-LABELS_SCHEMA = pa.schema([
-    ("user_id", pa.string()), ("item_id", pa.string()), ("ts", pa.timestamp("us", tz="UTC")),
-    ("event_id", pa.string()), ("level", pa.int32()), ("topic_id", pa.string()), ("label", pa.string()),
-    ("engaged", pa.bool_()), ("discovery", pa.bool_()), ("reward_multiplier", pa.float64()),
-    ("shaped_reward", pa.float64()), ("history_len", pa.int64()), ("known_topics", pa.int64()),
-    ("taxonomy_version", pa.string()), ("labels_version", pa.string())])
-FOOTPRINTS_SCHEMA = pa.schema([
-    ("user_id", pa.string()), ("level", pa.int32()), ("topic_id", pa.string()),
-    ("first_ts", pa.timestamp("us", tz="UTC")), ("last_ts", pa.timestamp("us", tz="UTC")),
-    ("interactions", pa.int64()), ("engaged_interactions", pa.int64()), ("known", pa.bool_()),
-    ("known_since", pa.timestamp("us", tz="UTC")), ("history_len", pa.int64()),
-    ("recent_us", pa.list_(pa.int64()))])
-SORT_KEYS = ("user_id", "ts_us", "event_id", "item_id", "level")
-ROW_GROUP = 262_144
-DAY_US = 86_400_000_000
-# how every output table is encoded: LZ4 (raw) pages, dictionaries only for the columns of few
-# distinct values (a dictionary of user or item ids costs time and saves nothing). Measured on a
-# footprints file of 8.3M rows: written in half the time and read in a quarter of it of
-# pyarrow's defaults (Snappy, every column in a dictionary), and 3% smaller.
-FEW_VALUES = ("level", "topic_id", "label", "taxonomy_version", "labels_version")
-# pieces' files are joined one output file a thread (Arrow encodes a file on one thread, without
-# the GIL); each thread holds up to a row group, so their number is capped
-JOIN_THREADS = min(4, os.cpu_count() or 1)
-
-
-def parquet_options(schema: pa.Schema, compression: str = "lz4") -> dict:
-    """How an output table is encoded (``compression``: EngineConfig.output_compression)."""
-    return {"compression": compression, "use_dictionary": [n for n in schema.names if n in FEW_VALUES]}
-
-
-class RowGroupWriter:
-    """Writes tables, however they arrive, in row groups of exactly ``ROW_GROUP`` rows, so the bytes
-    of a file do not depend on the batch sizes that fed it (an empty file gets the one empty row
-    group ``pq.write_table`` gives it)."""
-
-    def __init__(self, dest: Path, schema: pa.Schema, compression: str = "lz4"):
-        self.writer = pq.ParquetWriter(dest, schema, **parquet_options(schema, compression))
-        self.schema, self.pending, self.buffered, self.rows = schema, [], 0, 0
-        self.parked: list[Path] = []  # earlier rows not yet written, on disk (before ``pending``)
-
-    def add(self, table: pa.Table) -> None:
-        if table.num_rows == 0:
-            return
-        self.pending.append(table.cast(self.schema))
-        self.buffered += table.num_rows
-        self.rows += table.num_rows
-        if self.buffered >= ROW_GROUP:
-            whole = pa.concat_tables(self._unpark() + self.pending)
-            full = (whole.num_rows // ROW_GROUP) * ROW_GROUP
-            self.writer.write_table(whole.slice(0, full), row_group_size=ROW_GROUP)
-            rest = whole.slice(full)
-            self.pending, self.buffered = ([rest] if rest.num_rows else []), rest.num_rows
-
-    def park(self, dest: Path) -> None:
-        """Move the rows held in memory, not yet written, into ``dest`` (an Arrow IPC file, LZ4); they
-        are read back when a row group fills, or at ``close``."""
-        if self.pending:
-            with pa.ipc.new_file(dest, self.schema, options=pa.ipc.IpcWriteOptions(compression="lz4")) as out:
-                for table in self.pending:
-                    out.write_table(table)
-            self.parked.append(dest)
-            self.pending = []
-
-    def _unpark(self) -> list[pa.Table]:
-        tables = []
-        for path in self.parked:
-            with pa.OSFile(str(path), "rb") as source:
-                tables.append(pa.ipc.open_file(source).read_all())
-            path.unlink()
-        self.parked = []
-        return tables
-
-    def close(self) -> None:
-        self.pending = self._unpark() + self.pending
-        if self.pending or self.rows == 0:
-            self.writer.write_table(pa.concat_tables(self.pending) if self.pending else self.schema.empty_table(),
-                                    row_group_size=ROW_GROUP)
-        self.pending = []  # a file is closed while others stay open: hold none of its rows
-        self.writer.close()
-
-
-class DateFiles:
-    """One labels file per UTC date under ``root``, fed in date order.
-
-    Without ``parked`` (one pass) a date's file is closed when the next date starts. With it (a
-    run in pieces) every date's file stays open until :meth:`close`, so each piece appends its
-    rows of a date after the earlier pieces' rows of it, and the files are the pieces' rows in
-    piece order, cut into the same row groups as one pass: the same bytes, written as the pieces
-    go, with no scratch copy of the labels and no join at the end. Between pieces a date's
-    unwritten remainder (less than a row group) waits in a file in ``parked``, not in memory.
-    """
-
-    name = "part-0.parquet"
-
-    def __init__(self, root: Path, parked: Path | None = None, compression: str = "lz4"):
-        self.root, self.parked, self.compression = root, parked, compression
-        self.files: dict[str, RowGroupWriter] = {}
-        self.current: str | None = None
-        self.pieces = 0
-        root.mkdir(parents=True, exist_ok=True)
-        if parked is not None:
-            parked.mkdir(parents=True, exist_ok=True)
-
-    def add(self, date: str, table: pa.Table) -> None:
-        if date != self.current:
-            self._leave()
-            if date not in self.files:
-                (self.root / f"date={date}").mkdir()
-                self.files[date] = RowGroupWriter(self.root / f"date={date}" / self.name, LABELS_SCHEMA,
-                                                  self.compression)
-            self.current = date
-        self.files[date].add(table)
-
-    def _leave(self) -> None:
-        """Done with the current date for now: closed (one pass) or its remainder parked (pieces)."""
-        if self.current is None:
-            return
-        out = self.files[self.current]
-        if self.parked is None:
-            out.close()
-            del self.files[self.current]
-        else:
-            out.park(self.parked / f"{self.current}.{self.pieces:06d}.arrow")
-        self.current = None
-
-    def end_piece(self) -> None:
-        self._leave()
-        self.pieces += 1
-
-    def close(self) -> None:
-        """Write every open file's rest and close it, one file a thread on JOIN_THREADS threads
-        (when dates hold less than a row group, the whole run's labels are encoded here)."""
-        self._leave()
-        files, self.files = list(self.files.values()), {}
-        with ThreadPoolExecutor(max_workers=JOIN_THREADS) as pool:
-            list(pool.map(RowGroupWriter.close, files))
-
 
 @dataclasses.dataclass
 class Carried:
@@ -353,6 +214,10 @@ class LabelRun:
             self.materialized = True
         return self
 
+    def piece(self, interactions, as_of) -> "LabelRun":
+        """The plan of this run's rules over ``interactions`` (one piece of its users) as of ``as_of``."""
+        return plan_labels(interactions, self.taxonomy, self.config, engine=self.engine, as_of=as_of)
+
     def release(self) -> None:
         """Drop the engine tables ``materialize`` cached (the run is not read again after this)."""
         for t in (self._labels, self._base, self._new_rows, self._touched_carried):
@@ -377,7 +242,7 @@ class LabelRun:
 
     def labels_arrow(self) -> pa.Table:
         t = self.engine.to_arrow(self._labels_sorted().drop("ts_us"))
-        return _finish_labels(t, self.taxonomy_version, self.labels_version)
+        return finish_labels(t, self.taxonomy_version, self.labels_version)
 
     def labels_frame(self) -> pd.DataFrame:
         return self.labels_arrow().to_pandas()
@@ -387,7 +252,7 @@ class LabelRun:
             return pq.read_table(self.written["footprints"])
         t = self.footprints
         t = t.order_by([t.user_id, t.level, t.topic_id])
-        return _finish_footprints(self.engine.to_arrow(t))
+        return finish_footprints(self.engine.to_arrow(t))
 
     def footprint_batches(self, rows: int = 65_536, touched_only: bool = False):
         """The footprints in key order (user, level, topic) as Arrow record batches, streamed from
@@ -398,7 +263,7 @@ class LabelRun:
             return
         t = self.touched_footprints if touched_only else self.footprints
         for batch in self.engine.sorted_batches(t, ["user_id", "level", "topic_id"], rows):
-            yield from _finish_footprints(pa.Table.from_batches([batch])).to_batches()
+            yield from finish_footprints(pa.Table.from_batches([batch])).to_batches()
 
     def history_frame(self) -> pd.DataFrame:
         """user_id, history_len: each user's interactions up to ``as_of_us`` (unplaced ones included)."""
@@ -421,7 +286,7 @@ class LabelRun:
 
     def content_hash(self) -> str:
         """Order-independent canonical hash of the labels rows, equal across engines and machines."""
-        return sums_digest(self.engine.content_sums(self.labels, _CANON_COLUMNS), self._hash_extra)
+        return sums_digest(self.engine.content_sums(self.labels, CONTENT_COLUMNS), self._hash_extra)
 
     @property
     def _hash_extra(self) -> str:
@@ -513,7 +378,7 @@ class LabelRun:
         """Labels and footprints into ``tmp``: (label rows, footprint rows, summary, history)."""
         history = None
         if pieces:
-            n, fp_rows, summary, history = _write_in_pieces(self, tmp, limit, progress)
+            n, fp_rows, summary, history = write_in_pieces(self, tmp, limit, progress)
         else:
             self.materialize()
             if hasattr(self.engine, "write_partitioned"):  # a distributed engine writes from its workers
@@ -522,192 +387,13 @@ class LabelRun:
                              labels_version=ibis.literal(self.labels_version))
                 n = self.engine.write_partitioned(t, tmp / "labels", list(SORT_KEYS), LABELS_SCHEMA)
             else:
-                n = _write_partitioned(self, tmp / "labels")
+                n = write_by_date(self, tmp / "labels")
             fp = self.footprints_arrow()
-            pq.write_table(fp, tmp / "footprints.parquet", row_group_size=ROW_GROUP,
-                           **parquet_options(fp.schema, _compression(self.engine)))
+            write_whole(fp, tmp / "footprints.parquet", output_compression(self.engine))
             fp_rows = fp.num_rows
             summary = self.summary()
             summary["outputs"] = {"labels_content_hash": self.content_hash()}
         return n, fp_rows, summary, history
-
-
-def allow_open_files(dates: int, rows: int) -> None:
-    """Let this process keep a labels file open per date (a run in pieces does): the soft limit on
-    open files is raised toward the hard one; past the hard one, a clear error."""
-    try:
-        import resource
-    except ImportError:  # not a POSIX system: nothing to raise
-        return
-    need = dates + 256  # the engine's own files beside them
-    soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
-    if soft == resource.RLIM_INFINITY or soft >= need:
-        return
-    if hard != resource.RLIM_INFINITY and hard < need:
-        raise EngineError(
-            f"a run in pieces keeps one labels file open per date, and these {rows:,} interactions span "
-            f"{dates:,} dates while this process may open at most {hard:,} files: raise the open-file limit "
-            f"(ulimit -n {need}) or set [engine] bucket_rows above {rows:,} to label in one pass")
-    resource.setrlimit(resource.RLIMIT_NOFILE, (need if hard == resource.RLIM_INFINITY else hard, hard))
-
-
-class Piece(NamedTuple):
-    """A range [lo, hi) of user ids (None: open), with its interactions and users."""
-
-    lo: str | None
-    hi: str | None
-    rows: int
-    users: int
-
-
-SAMPLE_ROWS = 1_000_000  # the rows whose users set the pieces' cut
-
-
-def cut_users(engine: Engine, ev, rows: int, limit: int) -> list[Piece]:
-    """Ranges of user ids for pieces of about ``limit`` of the ``rows`` interactions of ``ev``, from
-    the interactions per user in a sample of about SAMPLE_ROWS rows (Bernoulli, seeded; every row
-    of a smaller log, whose counts are then exact). Counting every user's rows of a large log is
-    itself a large aggregation: at 1B interactions of 20M users it ran out of a 2 GB memory limit.
-    The cut sets only the pieces' sizes (a piece's ``rows`` and ``users`` are estimates when
-    sampled): the outputs are the same bytes for any cut."""
-    fraction = min(1.0, SAMPLE_ROWS / rows) if rows else 1.0
-    sample = ev if fraction >= 1.0 else ev.sample(fraction, method="row", seed=7)
-    counts = engine.to_arrow(sample.group_by("user_id").aggregate(n=sample.count()))
-    if fraction < 1.0:
-        scaled = pc.cast(pc.ceil(pc.divide(pc.cast(counts.column("n"), pa.float64()), fraction)), pa.int64())
-        counts = counts.set_column(counts.schema.get_field_index("n"), "n", scaled)
-    return user_pieces(counts, limit)
-
-
-def rows_in(files: list[str]) -> int:
-    """Rows of Parquet files, from their footers."""
-    return sum(pq.ParquetFile(f).metadata.num_rows for f in files)
-
-
-def user_pieces(counts: pa.Table, limit: int) -> list[Piece]:
-    """Ranges of user ids, in id order, each holding about ``limit`` interactions (a heavier user
-    is a range of its own). ``counts``: user_id, n.
-
-    Greedy: a range takes the next user while it stays within ``limit`` (and always takes one);
-    found by binary search over the running total, so tens of millions of users cost a search per
-    range, not Python work per user."""
-    counts = counts.take(pc.sort_indices(counts, [("user_id", "ascending")]))
-    ids = counts.column("user_id")
-    total = np.concatenate([[0], np.cumsum(counts.column("n").to_numpy())])
-    pieces, i, users = [], 0, counts.num_rows
-    while i < users or not pieces:
-        j = max(int(np.searchsorted(total, total[i] + limit, side="right")) - 1, i + 1) if users else 0
-        pieces.append(Piece(ids[i].as_py() if i else None, ids[j].as_py() if j < users else None,
-                            int(total[j] - total[i]), j - i))
-        i = j
-    return pieces
-
-
-def _write_in_pieces(run: LabelRun, tmp: Path, limit: int, progress: bool = False):
-    """Label ``run`` one range of users at a time, in user order.
-
-    Every rule is per user, so a piece's rows are exactly the whole run's rows of its users; each
-    piece's rows are appended, sorted, to the open date files (:class:`DateFiles`) and footprints,
-    so each file is the pieces' rows in range order, cut into the same row groups as a single
-    pass: the same bytes. Returns (label rows, footprint rows, summary, (history table, as_of_us,
-    pieces)).
-    """
-    eng, cfg, ev = run.engine, run.config, run.ev
-    # the latest kept event: the collapse of duplicates keeps their time, so without max_user_events
-    # (which counts collapsed rows) it is the latest event of a kept type
-    kept = None if cfg.event_types is None else ev.event_type.isin(list(cfg.event_types))
-    span = eng.to_arrow(ev.aggregate(mx=ev.ts_us.max(where=kept), mn=ev.ts_us.min()))
-    latest, earliest = span.column("mx")[0].as_py(), span.column("mn")[0].as_py()
-    if run.as_of is not None:
-        as_of_us = run.as_of_us
-    elif cfg.max_user_events is None:
-        as_of_us = latest
-    else:
-        prepared = prepare(ev, cfg)
-        stats = eng.to_arrow(prepared.group_by("user_id").aggregate(n=prepared.count(), mx=prepared.ts_us.max()))
-        keep = stats.filter(pc.less_equal(stats.column("n"), cfg.max_user_events))
-        as_of_us = pc.max(keep.column("mx")).as_py()
-    as_of = None if as_of_us is None else pd.Timestamp(as_of_us, unit="us", tz="UTC")
-    ranges = cut_users(eng, ev, run.intake.rows_in, limit)
-    log.info("labelling %d interactions in %d pieces of about %d", run.intake.rows_in, len(ranges), limit)
-    n = 0
-    sums = [0, 0, 0]
-    parts, histories = [], []
-    # every date's file and the footprints stay open while the pieces append to them in order
-    if earliest is not None:
-        allow_open_files(max((latest or earliest) // DAY_US - earliest // DAY_US, 0) + 1, run.intake.rows_in)
-    dates = DateFiles(tmp / "labels", parked=tmp / "parked", compression=_compression(eng))
-    footprints = RowGroupWriter(tmp / "footprints.parquet", FOOTPRINTS_SCHEMA, _compression(eng))
-    from tqdm import tqdm
-    bar = tqdm(total=run.intake.rows_in, unit=" interactions", unit_scale=True, disable=not progress,
-               desc="labelling in pieces")
-    users_done = 0
-    # one pass cuts the input into the pieces' files: each piece then reads its own rows only
-    scattered = eng.scatter(ev.select(*_INPUT_COLUMNS), "user_id", [p.hi for p in ranges[:-1]], tmp / "scatter")
-    for k, (lo, hi, _, _) in enumerate(ranges):
-        piece_rows = rows_in(scattered[k])
-        sel = eng.read_parquet(scattered[k])
-        staged = Staged(sel, source=run.intake.source, rows=piece_rows,
-                        content_hash=run.intake.content_hash)
-        sub = plan_labels(staged, run.taxonomy, cfg, engine=eng, as_of=as_of).materialize()
-        sub.labels_version = run.labels_version
-        n += _write_partitioned(sub, tmp / "labels", dates)
-        footprints.add(sub.footprints_arrow())
-        histories.append(sub.history_arrow())
-        parts.append(sub.summary_parts())
-        sums = [x + y for x, y in zip(sums, eng.content_sums(sub.labels, _CANON_COLUMNS))]
-        sub.release()
-        shutil.rmtree(tmp / "scatter" / f"_piece={k}")
-        log.info("piece %d of %d: users [%s, %s), %d interactions", k + 1, len(ranges), lo, hi, piece_rows)
-        users_done += parts[-1]["users"]
-        bar.set_postfix_str(f"{users_done:,} users, piece {k + 1}/{len(ranges)}")
-        bar.update(piece_rows)
-    bar.close()
-    dates.close()
-    footprints.close()
-    fp_rows = footprints.rows
-    shutil.rmtree(tmp / "parked")
-    counts = {}
-    for p in parts:
-        for key, v in p["counts"].items():
-            counts[key] = (max(x for x in (counts.get(key), v) if x is not None) if counts.get(key) is not None
-                           else v) if key == "max_ts_us" else counts.get(key, 0) + v
-    merged = {"by": pd.concat([p["by"] for p in parts]).groupby(["level", "label"], as_index=False).sum(),
-              "weeks": pd.concat([p["weeks"] for p in parts]).groupby(["level", "week"], as_index=False).sum(),
-              "users": sum(p["users"] for p in parts), "no_topic": sum(p["no_topic"] for p in parts),
-              "counts": counts}
-    summary = run.summary(merged)
-    summary["outputs"] = {"labels_content_hash": sums_digest(tuple(sums), run._hash_extra)}
-    history = pa.concat_tables(histories) if histories else pa.table({"user_id": [], "history_len": []})
-    return n, fp_rows, summary, (history, as_of_us, len(ranges))
-
-
-def _compression(engine: Engine) -> str:
-    return engine.config.output_compression
-
-
-def join_all(joins: list[tuple[list[Path], Path, pa.Schema]], compression: str = "lz4") -> list[int]:
-    """``join_pieces(files, dest, schema)`` for each of ``joins``, one output file a thread on
-    JOIN_THREADS threads (Arrow encodes a file on one thread, without the GIL: put the largest
-    first). Returns the rows of each, in order."""
-    with ThreadPoolExecutor(max_workers=JOIN_THREADS) as pool:
-        return list(pool.map(lambda job: join_pieces(*job, compression), joins))
-
-
-def join_pieces(files: list[Path], dest: Path, schema: pa.Schema, compression: str = "lz4") -> int:
-    """Concatenate Parquet files into ``dest`` in ROW_GROUP-row groups, streaming. Returns the rows."""
-    dest.parent.mkdir(parents=True, exist_ok=True)
-    out = RowGroupWriter(dest, schema, compression)
-    for f in files:
-        pf = pq.ParquetFile(f)
-        for i in range(pf.num_row_groups):
-            out.add(pf.read_row_group(i))
-    out.close()
-    return out.rows
-
-
-_CANON_COLUMNS = ("user_id", "item_id", "ts_us", "event_id", "level", "topic_id", "label", "engaged",
-                  "discovery", "reward_multiplier", "shaped_reward", "history_len", "known_topics")
 
 
 def _share(a: int, b: int) -> float:
@@ -718,43 +404,6 @@ def _iso_us(us: int | None) -> str | None:
     if us is None:
         return None
     return pd.Timestamp(us, unit="us", tz="UTC").isoformat()
-
-
-def _finish_labels(t: pa.Table, tax_version: str, labels_version: str) -> pa.Table:
-    n = t.num_rows
-    t = t.append_column("taxonomy_version", pa.array([tax_version] * n, pa.string()))
-    t = t.append_column("labels_version", pa.array([labels_version] * n, pa.string()))
-    return t.select(list(LABELS_COLUMNS)).cast(LABELS_SCHEMA)
-
-
-def _finish_footprints(t: pa.Table) -> pa.Table:
-    since = pc.cast(t.column("known_since_us"), pa.timestamp("us", tz="UTC"))
-    t = t.drop_columns(["known_since_us"]).append_column("known_since", since)
-    return t.select([*FOOTPRINTS_COLUMNS, "history_len", "recent_us"]).cast(FOOTPRINTS_SCHEMA)
-
-
-def _write_partitioned(run: LabelRun, root: Path, files: DateFiles | None = None) -> int:
-    """Stream labels sorted by (date, user, ts, ...) into one Parquet file per UTC date.
-
-    Row groups have a fixed size whatever the engine's batch sizes, so the bytes are repeatable.
-    ``files``: a run in pieces' open date files (this piece's rows are appended to them).
-    """
-    t = run.labels.mutate(date=run.labels.ts.date().cast("string"))
-    t = t.order_by([t.date] + [ibis.asc(t[k], nulls_first=False) for k in SORT_KEYS])
-    out = files or DateFiles(root, compression=_compression(run.engine))
-    total = 0
-    for batch in run.engine.to_batches(t):
-        dates = batch.column(batch.schema.get_field_index("date"))
-        for date in pc.unique(dates).to_pylist():
-            part = pa.Table.from_batches([batch.filter(pc.equal(dates, date))]).drop_columns(
-                ["date", "ts_us"])
-            out.add(date, _finish_labels(part, run.taxonomy_version, run.labels_version))
-            total += part.num_rows
-    if files is None:
-        out.close()
-    else:
-        out.end_piece()
-    return total
 
 
 def plan_labels(interactions, taxonomy, config: LabelConfig | None = None, *,
