@@ -21,6 +21,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from .errors import ModelNotFoundError
+from .tables import item_text
 
 log = logging.getLogger(__name__)
 
@@ -221,7 +222,6 @@ def embed_texts(texts: Sequence[str], embedder: Embedder, cache: EmbeddingCache 
 def embed_items(items, cfg: dict, embedder, progress: bool = True):
     """Vectors of the items' text (``cfg``: a taxonomy's settings as a dict: ``text_columns``,
     ``embedding_cache``, ``batch_size``), through the content-hash cache where the embedder allows."""
-    from .tables import item_text
     texts = item_text(items, cfg["text_columns"]).tolist()
     cacheable = cfg.get("embedding_cache") and getattr(embedder, "cacheable", True)
     cache = EmbeddingCache(cfg["embedding_cache"], embedder.name) if cacheable else None

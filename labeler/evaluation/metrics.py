@@ -107,9 +107,8 @@ def item_vectors(items: pd.DataFrame, tax, taxonomy_config=None, embedder=None) 
     """{item_id: unit vector} for the embedding diversity: the learned taxonomy's own model and
     settings, or the configured model for an editorial taxonomy (both through the embedding cache)."""
     from ..config import TaxonomyConfig
-    from ..embed import SentenceEmbedder
+    from ..embed import SentenceEmbedder, embed_items
     from ..tables import normalize_items
-    from ..embed import embed_items
     if tax.kind == "learned":
         cfg = tax.manifest["config"]
         embedder = embedder or tax.embedder()

@@ -38,9 +38,9 @@ import pyarrow.compute as pc
 from ..config import JobConfig
 from ..engines import make_engine, quiet
 from ..errors import ConfigError, EngineError, InputError, RejectedError
+from ..labels.files import FOOTPRINTS_SCHEMA
 from ..labels.intake import Staged as StagedInput
 from ..labels.intake import parquet_rows
-from ..labels.files import FOOTPRINTS_SCHEMA
 from ..labels.plan import Carried, plan_labels
 from ..tables import normalize_items, read_table
 from ..taxonomy import Taxonomy, build_taxonomy
