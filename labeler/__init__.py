@@ -4,6 +4,7 @@
 >>> sorted(n for n in labeler.__all__ if n.startswith("build"))
 ['build_footprints', 'build_taxonomy']
 """
+from . import version
 from .config import EngineConfig, GateConfig, InputConfig, JobConfig, LabelConfig, TaxonomyConfig, \
     load_job_config
 from .errors import ArtifactError, ConfigError, InputError, LabelerError, ModelNotFoundError
@@ -13,9 +14,8 @@ from .labels import Carried, build_footprints, label_interactions, plan_labels
 from .rollout import RolloutResult, check_rollout
 from .store import Classification, Erasure, Footprint, Store, TopicState, forget_users, open_store, publish_store
 from .taxonomy import Taxonomy, build_taxonomy
-from .version import VERSION
 
-__version__ = VERSION  # written once, in labeler/version.py
+__version__ = version.__version__  # written once, in labeler/version.py
 
 __all__ = ["ArtifactError", "ConfigError", "EngineConfig", "GateConfig", "InputConfig", "InputError",
            "JobConfig", "LabelConfig", "LabelerError", "ModelNotFoundError", "Taxonomy", "TaxonomyConfig",

@@ -1,2 +1,2 @@
 """The tool's version: part of every taxonomy, labels and store version it writes."""
-__version__ = VERSION = "0.1.0"
+__version__ = "0.1.0"

@@ -21,7 +21,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from ..labels.files import FOOTPRINTS_SCHEMA, LABELS_SCHEMA, ROW_GROUP, RowGroupWriter, join_all, parquet_options
+from ..labels.files import FOOTPRINTS_SCHEMA, LABELS_SCHEMA, ROW_GROUP, RowGroupWriter, join_all, write_whole
 from . import failpoints
 
 log = logging.getLogger(__name__)
@@ -50,7 +50,7 @@ def _atomic(dest: Path, point: str):
 def write_table(table: pa.Table, dest: Path, point: str, compression: str = "lz4") -> None:
     """Write one Parquet file atomically (temp file, fsync, rename), fixed row groups."""
     with _atomic(dest, point) as tmp:
-        pq.write_table(table, tmp, row_group_size=ROW_GROUP, **parquet_options(table.schema, compression))
+        write_whole(table, tmp, compression)
 
 
 def _sorted(table: pa.Table, keys) -> pa.Table:

@@ -22,6 +22,7 @@ import pyarrow.parquet as pq
 
 from ..config import InputConfig
 from ..errors import InputError, LabelerError
+from ..labels.files import DAY_US
 from ..labels.intake import files_hash, interactions_schema
 from ..tables import normalize_interactions, read_table
 from . import failpoints
@@ -32,7 +33,6 @@ _DATE = r"(\d{4}-\d{2}-\d{2})"
 _DIR = re.compile(rf"^date={_DATE}$")
 _FILE = re.compile(rf"^{_DATE}\.(parquet|pq|csv)$", re.IGNORECASE)
 _DATA = (".parquet", ".pq", ".csv")
-DAY_US = 86_400_000_000
 
 
 @dataclasses.dataclass
