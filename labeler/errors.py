@@ -34,7 +34,7 @@ class InputError(LabelerError):
         if hint:
             text += f" {hint}"
         super().__init__(text)
-        self.source, self.column, self.sample = source, column, sample or []
+        self.source, self.column, self.sample, self.hint = source, column, sample or [], hint
 
 
 class ModelNotFoundError(LabelerError):

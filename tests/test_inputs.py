@@ -122,7 +122,8 @@ PARQUET_CASES = {
 
 @pytest.mark.parametrize("name", list(PARQUET_CASES))
 def test_lazy_parquet_path_checks_the_same_contract(tmp_path, name):
-    """A Parquet file read lazily (native types) is checked like an in-memory table, statistics or not."""
+    """A Parquet file read lazily (native types) is checked like an in-memory table, statistics or not,
+    and its error says what to do, as the in-memory path's does."""
     from labelcases import taxonomy
     from labeler import label_interactions
     tax = taxonomy({"a": [("x", 1.0)]})
@@ -132,8 +133,9 @@ def test_lazy_parquet_path_checks_the_same_contract(tmp_path, name):
     for stats in (True, False):
         p = tmp_path / f"{name}-{stats}.parquet"
         change(good).to_parquet(p, write_statistics=stats)
-        with pytest.raises(InputError, match=re.escape(message)):
+        with pytest.raises(InputError, match=re.escape(message)) as err:
             label_interactions(p, tax)
+        assert err.value.hint
     good.to_parquet(tmp_path / "good.parquet")
     assert len(label_interactions(tmp_path / "good.parquet", tax)) == 2
 

@@ -204,22 +204,25 @@ def _lazy_parquet(engine, path: Path, cfg: InputConfig, source: str):
     if intake.rows_in == 0:
         raise InputError("the table has no rows.", source=source, hint="Give a non-empty table.")
     blank = lambda c: c.isnull() | (c.strip() == "")  # noqa: E731
-    rules = {"user_id": (blank(t.user_id), "null or empty id(s)"),
-             "item_id": (blank(t.item_id), "null or empty id(s)"),
-             "ts": (t.ts.isnull(), "null timestamp(s)"),
+    no_id = "Every row needs a non-empty id; fix or remove these rows upstream."
+    rules = {"user_id": (blank(t.user_id), "null or empty id(s)", no_id),
+             "item_id": (blank(t.item_id), "null or empty id(s)", no_id),
+             "ts": (t.ts.isnull(), "null timestamp(s)", "Every interaction needs a time."),
              "engagement": (t.engagement.isnull() | t.engagement.isnan() | t.engagement.isinf()
-                            | (t.engagement.abs() > 1e300), "null, NaN, infinite or beyond +-1e300 engagement value(s)")}
+                            | (t.engagement.abs() > 1e300), "null, NaN, infinite or beyond +-1e300 engagement value(s)",
+                            "Engagement must be a finite number; drop the column for 1.0 everywhere.")}
     proven = _clean_by_statistics(files, [c for c in rules if c in names])
     to_scan = {c: r for c, r in rules.items() if c in names and c not in proven}
     if to_scan:
-        counts = t.aggregate(**{c: expr.cast("int64").sum() for c, (expr, _) in to_scan.items()}).execute()
-        for col, (expr, what) in to_scan.items():
+        counts = t.aggregate(**{c: expr.cast("int64").sum() for c, (expr, _, _) in to_scan.items()}).execute()
+        for col, (expr, what, hint) in to_scan.items():
             n_bad = int(counts[col].iloc[0] or 0)
             if n_bad:
                 sample = t.filter(expr).limit(5).execute()
                 raise InputError(f"{n_bad} {what}.", source=source, column=col,
                                  sample=[", ".join(f"{k}={v!r}" for k, v in r.items())
-                                         for r in sample[list(INTERACTIONS_REQUIRED)].to_dict("records")])
+                                         for r in sample[list(INTERACTIONS_REQUIRED)].to_dict("records")],
+                                 hint=hint)
     if "engagement" not in names:
         intake.note("no 'engagement' column: every interaction counts as 1.0")
     return _with_ts_us(engine, t), intake
